@@ -1,0 +1,3 @@
+"""benchctl: characterise analog and RF boards across their supply rail over SCPI."""
+
+__version__ = "0.1.0"
