@@ -1,0 +1,200 @@
+"""The one small interface between the runner and the procedures.
+
+A procedure is a class registered by name with :func:`register`. It declares its
+parameters (:class:`Param`: type, unit, default) and the columns it records
+(:class:`Column`), and its ``run(ctx, params)`` measures points through
+``ctx.point(key, measure)`` and returns derived parameters (:class:`Result`).
+
+Resume rule: ``ctx.point`` returns the recorded row when a point with that key was
+already taken in an interrupted run, without calling ``measure``. So keys must follow
+deterministically from the parameters and from earlier rows, and each ``measure``
+callable must establish the bench state it needs itself (never rely on the state a
+previous point left behind).
+"""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any, ClassVar, Protocol
+
+REQUIRED: Any = object()
+"""Marker default: the plan must give this parameter."""
+
+_KINDS = (float, int, bool, str, list)
+
+
+@dataclass(frozen=True)
+class Param:
+    """One parameter a procedure takes from the plan.
+
+    ``kind`` is float, int, bool, str or list (a list of floats). ``unit`` is the
+    physical unit ("V", "Hz", "s", "" for none); ``minimum``/``maximum`` bound numbers
+    (and every element of a list); ``choices`` restricts strings.
+    """
+
+    name: str
+    kind: type
+    unit: str = ""
+    default: Any = REQUIRED
+    doc: str = ""
+    minimum: float | None = None
+    maximum: float | None = None
+    choices: tuple[str, ...] | None = None
+
+    @property
+    def required(self) -> bool:
+        return self.default is REQUIRED
+
+
+@dataclass(frozen=True)
+class Column:
+    """One column of a procedure's points table."""
+
+    name: str
+    unit: str = ""
+    doc: str = ""
+
+
+@dataclass(frozen=True)
+class Result:
+    """A derived parameter: value with unit, standard uncertainty and the method used.
+
+    ``low``/``high`` carry an interval where the method gives one (a bracket or a 95%
+    confidence interval, as ``method`` says). ``value`` is None when the quantity could
+    not be determined; ``note`` then says why.
+    """
+
+    name: str
+    value: float | None
+    unit: str
+    uncertainty: float | None = None
+    method: str = ""
+    low: float | None = None
+    high: float | None = None
+    note: str = ""
+
+
+@dataclass(frozen=True)
+class Limits:
+    """Safety limits from the plan; the runner programs them before any output is on."""
+
+    max_rail_v: float
+    current_limit_a: float
+    ovp_v: float
+    ramp_v_per_s: float
+
+
+@dataclass(frozen=True)
+class BoardInfo:
+    name: str
+    revision: str = ""
+    serial: str = ""
+
+
+class Clock(Protocol):
+    def monotonic(self) -> float: ...
+
+    def sleep(self, seconds: float) -> None: ...
+
+
+class StepContext(Protocol):
+    """What a procedure gets from the runner for one step."""
+
+    bench: Any  # benchctl.drivers.Bench: .supply, .generator, .scope, .wiring
+    limits: Limits
+    board: BoardInfo
+    clock: Clock
+    log: logging.Logger
+    step_name: str
+
+    def point(self, key: str, measure: Callable[[], Mapping[str, Any]]) -> Mapping[str, Any]:
+        """Record one point (a row of the declared columns), or return it if recorded."""
+        ...
+
+    def save_waveform(self, key: str, **arrays: Any) -> str:
+        """Store arrays for a point; returns the path relative to the run folder."""
+        ...
+
+    def progress(self, done: int, total: int | None, readings: Mapping[str, Any] | None = None) -> None:
+        """Report progress within the step (``total`` may be an estimate or None)."""
+        ...
+
+    def earlier(self, name: str) -> Mapping[str, Result]:
+        """Results of an earlier step, by step name (or procedure name); KeyError if none."""
+        ...
+
+    def earlier_points(self, name: str) -> list[Mapping[str, Any]]:
+        """Points recorded by an earlier step, by step name (or procedure name)."""
+        ...
+
+    def check_abort(self) -> None:
+        """Raise AbortRequested if the operator or the system asked the run to stop."""
+        ...
+
+
+class Procedure:
+    """Base class; subclasses set the class attributes and implement :meth:`run`."""
+
+    name: ClassVar[str]
+    summary: ClassVar[str]
+    params: ClassVar[tuple[Param, ...]]
+    columns: ClassVar[tuple[Column, ...]]
+
+    def run(self, ctx: StepContext, params: Mapping[str, Any]) -> list[Result]:  # pragma: no cover
+        raise NotImplementedError
+
+
+REGISTRY: dict[str, type[Procedure]] = {}
+
+
+def register(cls: type[Procedure]) -> type[Procedure]:
+    """Class decorator: add a procedure to :data:`REGISTRY`, failing loudly if it is incomplete."""
+    for attr in ("name", "summary", "params", "columns"):
+        if not hasattr(cls, attr):
+            raise TypeError(f"procedure {cls.__qualname__} lacks the class attribute {attr!r}")
+    if not cls.name.isidentifier():
+        raise TypeError(f"procedure name {cls.name!r} must be an identifier")
+    if cls.name in REGISTRY and REGISTRY[cls.name] is not cls:
+        raise TypeError(f"procedure name {cls.name!r} is registered twice")
+    if cls.run is Procedure.run:
+        raise TypeError(f"procedure {cls.name!r} does not implement run()")
+    names = [p.name for p in cls.params]
+    if len(set(names)) != len(names):
+        raise TypeError(f"procedure {cls.name!r} declares a parameter twice: {names}")
+    for p in cls.params:
+        if p.kind not in _KINDS:
+            raise TypeError(f"procedure {cls.name!r}: parameter {p.name!r} has unsupported kind {p.kind!r}")
+    cols = [c.name for c in cls.columns]
+    if len(set(cols)) != len(cols) or "point" in cols:
+        raise TypeError(f"procedure {cls.name!r}: columns must be unique and not 'point': {cols}")
+    REGISTRY[cls.name] = cls
+    return cls
+
+
+def get(name: str) -> type[Procedure]:
+    """Return the registered procedure ``name`` (KeyError lists the known ones)."""
+    load_builtin()
+    try:
+        return REGISTRY[name]
+    except KeyError:
+        raise KeyError(f"unknown procedure {name!r}; known: {', '.join(sorted(REGISTRY))}") from None
+
+
+def load_builtin() -> None:
+    """Import the shipped procedure modules so that they register."""
+    import importlib
+
+    for module in BUILTIN_MODULES:
+        importlib.import_module(module)
+
+
+BUILTIN_MODULES: Sequence[str] = (
+    "benchctl.procedures.rail_sweep",
+    "benchctl.procedures.thresholds",
+    "benchctl.procedures.linear_region",
+    "benchctl.procedures.modulation",
+    "benchctl.procedures.pushing",
+    "benchctl.procedures.startup_time",
+)
