@@ -42,6 +42,8 @@ class Param:
     minimum: float | None = None
     maximum: float | None = None
     choices: tuple[str, ...] | None = None
+    rail: bool = False
+    """True for a rail setpoint: the runner checks it against the plan's max_rail_v."""
 
     @property
     def required(self) -> bool:
@@ -141,6 +143,8 @@ class Procedure:
     summary: ClassVar[str]
     params: ClassVar[tuple[Param, ...]]
     columns: ClassVar[tuple[Column, ...]]
+    results: ClassVar[tuple[str, ...]] = ()
+    """Names of the derived parameters run() returns; spec limits may name only these."""
 
     def run(self, ctx: StepContext, params: Mapping[str, Any]) -> list[Result]:  # pragma: no cover
         raise NotImplementedError
