@@ -1,0 +1,98 @@
+"""Arming the bench safely, and the safe state every exit path ends in.
+
+Order matters and is common practice (no published source): outputs off first, then
+protection (current limit, over-voltage) programmed and read back, and only then may a
+procedure enable an output. The safe state is: generator output off, supply ramped down
+at the plan's ramp rate and switched off, both verified by readback where reachable.
+Each action is tried on its own, so one unreachable instrument never stops the others
+from being made safe.
+"""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+from benchctl.errors import BenchError, SafetyError
+from benchctl.procedures.base import Limits
+
+_READBACK_REL_TOL = 0.02
+
+
+@dataclass
+class SafeStateReport:
+    """What the safe-state sequence did; ``verified`` is True only if readback confirmed it."""
+
+    actions: list[str] = field(default_factory=list)
+    failures: list[str] = field(default_factory=list)
+    generator_off: bool | None = None
+    supply_off: bool | None = None
+
+    @property
+    def verified(self) -> bool:
+        return bool(self.generator_off) and bool(self.supply_off) and not self.failures
+
+    def summary(self) -> str:
+        gen = {True: "off (read back)", False: "NOT confirmed off", None: "unreachable"}[self.generator_off]
+        sup = {True: "off (read back)", False: "NOT confirmed off", None: "unreachable"}[self.supply_off]
+        return f"safe state: generator {gen}, supply {sup}"
+
+
+def arm(bench: Any, limits: Limits, log: logging.Logger) -> None:
+    """Put the bench in a known state with protection programmed; outputs stay off.
+
+    Raises
+    ------
+    SafetyError
+        If the supply does not read back the current limit or protection level asked.
+    """
+    bench.generator.output(False)
+    bench.supply.output(False)
+    bench.supply.set_voltage(0.0)
+    bench.supply.set_current_limit(limits.current_limit_a)
+    bench.supply.set_ovp(limits.ovp_v)
+    _check_readback(bench.supply, "current_limit", limits.current_limit_a, "current limit", "A")
+    _check_readback(bench.supply, "ovp", limits.ovp_v, "over-voltage protection", "V")
+    if bench.supply.is_output_on():
+        raise SafetyError("supply output reads back ON after being switched off")
+    log.info("bench armed: current limit %.4g A, OVP %.4g V, outputs off", limits.current_limit_a, limits.ovp_v)
+
+
+def _check_readback(supply: Any, name: str, wanted: float, what: str, unit: str) -> None:
+    getter: Callable[[], float] | None = getattr(supply, f"get_{name}", None)
+    if getter is None:  # a driver without the query cannot verify; the setting was still sent
+        return
+    got = float(getter())
+    if abs(got - wanted) > _READBACK_REL_TOL * abs(wanted) + 1e-9:
+        raise SafetyError(f"{what} reads back {got:g} {unit}, asked {wanted:g} {unit}")
+
+
+def make_safe(bench: Any, limits: Limits, log: logging.Logger) -> SafeStateReport:
+    """Drive the bench to its safe state; never raises (failures are in the report)."""
+    report = SafeStateReport()
+
+    def attempt(label: str, fn: Callable[[], Any]) -> Any:
+        try:
+            value = fn()
+            report.actions.append(label)
+            return value
+        except (BenchError, OSError) as exc:
+            report.failures.append(f"{label}: {exc}")
+            log.warning("safe state: %s failed: %s", label, exc)
+            return None
+
+    generator = getattr(bench, "generator", None)
+    supply = getattr(bench, "supply", None)
+    if generator is not None:
+        attempt("generator output off", lambda: generator.output(False))
+        state = attempt("generator readback", generator.is_output_on)
+        report.generator_off = None if state is None else not state
+    if supply is not None:
+        attempt("supply ramp down", lambda: supply.ramp_to(0.0, rate_v_per_s=limits.ramp_v_per_s))
+        attempt("supply output off", lambda: supply.output(False))
+        state = attempt("supply readback", supply.is_output_on)
+        report.supply_off = None if state is None else not state
+    log.info(report.summary())
+    return report
