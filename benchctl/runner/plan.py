@@ -94,7 +94,9 @@ def parse_plan(text: str, *, file: str = "<plan>") -> Plan:
 
     board = _board(doc.get("board"), err)
     limits = _limits(doc.get("limits"), err)
-    steps = _steps(doc.get("steps"), limits, err)
+    raw_limits = doc.get("limits")
+    max_rail_v = _number(raw_limits.get("max_rail_v")) if isinstance(raw_limits, dict) else None
+    steps = _steps(doc.get("steps"), max_rail_v, err)
     if errors:
         raise ConfigErrors(errors)
     assert board is not None and limits is not None
@@ -169,7 +171,7 @@ def _limits(section: Any, err) -> base.Limits | None:
     return base.Limits(max_rail_v, got["current_limit_a"], ovp_value, ramp_value)
 
 
-def _steps(section: Any, limits: base.Limits | None, err) -> list[Step]:
+def _steps(section: Any, max_rail_v: float | None, err) -> list[Step]:
     if section is None:
         err("steps", "missing: a plan needs at least one [[steps]] entry")
         return []
@@ -202,14 +204,14 @@ def _steps(section: Any, limits: base.Limits | None, err) -> list[Step]:
         if step_name in seen:
             err(f"{where}.name", f"step name {step_name!r} is used twice; give each step its own name")
         seen.add(step_name)
-        params = _params(proc, raw.get("params", {}), f"{where}.params", limits, err)
+        params = _params(proc, raw.get("params", {}), f"{where}.params", max_rail_v, err)
         spec = _spec(proc, raw.get("spec", {}), f"{where}.spec", err)
         if params is not None and spec is not None:
             steps.append(Step(i, step_name, name_of, params, spec))
     return steps
 
 
-def _params(proc: type[base.Procedure], raw: Any, where: str, limits: base.Limits | None, err) -> dict | None:
+def _params(proc: type[base.Procedure], raw: Any, where: str, max_rail_v: float | None, err) -> dict | None:
     if not isinstance(raw, dict):
         err(where, f"must be a table, got {type(raw).__name__}")
         return None
@@ -228,7 +230,7 @@ def _params(proc: type[base.Procedure], raw: Any, where: str, limits: base.Limit
             else:
                 values[p.name] = p.default
             continue
-        reason, value = _check_value(p, raw[p.name], limits)
+        reason, value = _check_value(p, raw[p.name], max_rail_v)
         if reason:
             err(f"{where}.{p.name}", reason)
             ok = False
@@ -237,7 +239,7 @@ def _params(proc: type[base.Procedure], raw: Any, where: str, limits: base.Limit
     return values if ok else None
 
 
-def _check_value(p: base.Param, value: Any, limits: base.Limits | None) -> tuple[str, Any]:
+def _check_value(p: base.Param, value: Any, max_rail_v: float | None) -> tuple[str, Any]:
     unit = f" {p.unit}" if p.unit else ""
     if p.kind is bool:
         return ("", value) if isinstance(value, bool) else (f"must be true or false, got {value!r}", None)
@@ -252,7 +254,7 @@ def _check_value(p: base.Param, value: Any, limits: base.Limits | None) -> tuple
             return f"must be a non-empty list of numbers, got {value!r}", None
         out = []
         for j, item in enumerate(value):
-            reason = _check_number(p, item, limits, unit)
+            reason = _check_number(p, item, max_rail_v, unit)
             if reason:
                 return f"element {j}: {reason}", None
             out.append(float(item))
@@ -260,13 +262,13 @@ def _check_value(p: base.Param, value: Any, limits: base.Limits | None) -> tuple
     if p.kind is int:
         if isinstance(value, bool) or not isinstance(value, int):
             return f"must be an integer, got {value!r}", None
-    reason = _check_number(p, value, limits, unit)
+    reason = _check_number(p, value, max_rail_v, unit)
     if reason:
         return reason, None
     return "", (int(value) if p.kind is int else float(value))
 
 
-def _check_number(p: base.Param, value: Any, limits: base.Limits | None, unit: str) -> str:
+def _check_number(p: base.Param, value: Any, max_rail_v: float | None, unit: str) -> str:
     number = _number(value)
     if number is None:
         return f"must be a finite number{unit}, got {value!r}"
@@ -274,8 +276,8 @@ def _check_number(p: base.Param, value: Any, limits: base.Limits | None, unit: s
         return f"{number:g}{unit} is below the minimum {p.minimum:g}{unit}"
     if p.maximum is not None and number > p.maximum:
         return f"{number:g}{unit} is above the maximum {p.maximum:g}{unit}"
-    if p.rail and limits is not None and number > limits.max_rail_v:
-        return f"rail setpoint {number:g} V is above limits.max_rail_v = {limits.max_rail_v:g} V"
+    if p.rail and max_rail_v is not None and number > max_rail_v:
+        return f"rail setpoint {number:g} V is above limits.max_rail_v = {max_rail_v:g} V"
     if p.rail and number < 0:
         return f"rail setpoint {number:g} V must be >= 0"
     return ""
