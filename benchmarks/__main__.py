@@ -1,0 +1,25 @@
+"""Run every benchmark: ``python -m benchmarks`` (``make bench``).
+
+Each ``bench_*.py`` file is a script that measures ratios side by side in one run and
+prints them; none of them is a test, and none asserts on absolute time.
+"""
+
+from __future__ import annotations
+
+import runpy
+import sys
+from pathlib import Path
+
+
+def main(argv: list[str]) -> int:
+    here = Path(__file__).parent
+    wanted = set(argv)
+    scripts = sorted(p for p in here.glob("bench_*.py") if not wanted or p.stem in wanted)
+    for script in scripts:
+        print(f"\n=== {script.stem} ===", flush=True)
+        runpy.run_path(str(script), run_name="__main__")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main(sys.argv[1:]))
