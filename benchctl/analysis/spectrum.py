@@ -1,0 +1,332 @@
+"""Harmonic analysis (THD, SNR, SINAD, ENOB by IEEE Std 1241) and the oscillation detector.
+
+References
+----------
+.. [1] IEEE Std 1241-2010, "IEEE Standard for Terminology and Test Methods for
+       Analog-to-Digital Converters", 9.1 (THD), 9.2 (SINAD, ENOB), 9.3 (SNR); harmonics
+       estimated by a least-squares fit at the (aliased) harmonic frequencies.
+.. [2] IEEE Std 1057-2017, clause 8 (sine fits).
+.. [3] F. J. Harris, "On the use of windows for harmonic analysis with the discrete Fourier
+       transform", Proc. IEEE 66(1), 1978 (Hann window, equivalent noise bandwidth 1.5 bins).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import ArrayLike, NDArray
+
+from benchctl.analysis._common import as_record, check_positive, db10, db20
+from benchctl.analysis.waveform import _cos_sin, _hann, fit_sine
+from benchctl.errors import MeasurementError
+
+__all__ = ["Detection", "HarmonicAnalysis", "detect_oscillation", "harmonics"]
+
+
+@dataclass(frozen=True, slots=True)
+class HarmonicAnalysis:
+    """Harmonic content of a record by IEEE Std 1241 definitions.
+
+    Attributes
+    ----------
+    fundamental_hz : float
+        Fundamental frequency, Hz.
+    harmonic_v : tuple of float
+        Peak amplitude of harmonics 1..n, V (index 0 is the fundamental); NaN where the
+        harmonic aliases onto DC, Nyquist or a lower harmonic and cannot be separated.
+    harmonic_hz : tuple of float
+        Frequency at which each harmonic appears in the record after aliasing, Hz.
+    u_harmonic_v : float
+        Standard uncertainty of each harmonic amplitude, V (same for all).
+    thd_ratio : float
+        RMS of harmonics 2..n over RMS of the fundamental (a ratio, not %).
+    u_thd_ratio : float
+        Standard uncertainty of ``thd_ratio``.
+    thd_db : float
+        20 log10(thd_ratio), dB.
+    snr_db : float
+        Fundamental power over noise power with harmonics 2..n removed, dB.
+    sinad_db : float
+        Fundamental RMS over RMS of noise and distortion (sine-fit residual), dB.
+    enob : float
+        Effective number of bits: log2(FSR / (sqrt(12) NAD)) when ``full_scale_v`` is
+        given (IEEE 1241), else (SINAD - 1.76 dB) / 6.02 dB (assumes a full-scale input).
+    nad_rms_v : float
+        RMS of noise and distortion, V.
+    noise_rms_v : float
+        RMS of the residual with all n harmonics removed, V.
+    n_samples : int
+        Record length.
+    method : str
+        How the harmonics were estimated.
+    """
+
+    fundamental_hz: float
+    harmonic_v: tuple[float, ...]
+    harmonic_hz: tuple[float, ...]
+    u_harmonic_v: float
+    thd_ratio: float
+    u_thd_ratio: float
+    thd_db: float
+    snr_db: float
+    sinad_db: float
+    enob: float
+    nad_rms_v: float
+    noise_rms_v: float
+    n_samples: int
+    method: str
+
+
+@dataclass(frozen=True, slots=True)
+class Detection:
+    """Whether a record holds an oscillation, with the evidence for the verdict.
+
+    Attributes
+    ----------
+    oscillating : bool
+        The verdict: every test below passed.
+    snr_db : float
+        Fundamental power over noise power (harmonics removed), dB.
+    prominence_db : float
+        Spectral peak over the median of the spectrum (the noise floor), dB.
+    freq_hz : float
+        Frequency of the strongest line, Hz (NaN for a flat record).
+    vpp_v : float
+        Peak-to-peak of the fitted fundamental, V.
+    in_band : bool
+        ``freq_hz`` lies inside the expected band (True when no band is given).
+    reason : str
+        One line saying why the verdict was reached.
+    """
+
+    oscillating: bool
+    snr_db: float
+    prominence_db: float
+    freq_hz: float
+    vpp_v: float
+    in_band: bool
+    reason: str
+
+
+def _aliased_hz(freq_hz: float, fs_hz: float) -> float:
+    """Frequency at which a tone of ``freq_hz`` appears when sampled at ``fs_hz``."""
+    f = math.fmod(freq_hz, fs_hz)
+    return fs_hz - f if f > 0.5 * fs_hz else f
+
+
+def _harmonic_lsq(
+    y: NDArray[np.float64], freqs_cycles: list[float]
+) -> tuple[NDArray[np.float64], NDArray[np.float64], float]:
+    """Least-squares fit of DC plus one sine per frequency (cycles/sample).
+
+    Returns per-frequency peak amplitudes, the residual, and the unscaled variance factor
+    (average diagonal of (B^T B)^-1 for the cos/sin columns).
+    """
+    n = y.size
+    cols = [np.ones(n)]
+    for f in freqs_cycles:
+        co, si = _cos_sin(2.0 * math.pi * f, n)
+        cols.extend((co, si))
+    basis = np.vstack(cols)
+    h = basis @ basis.T
+    coef = np.linalg.solve(h, basis @ y)
+    resid = y - coef @ basis
+    amps = np.hypot(coef[1::2], coef[2::2])
+    var_factor = float(np.mean(np.diag(np.linalg.inv(h))[1:]))
+    return amps, resid, var_factor
+
+
+def harmonics(
+    y: ArrayLike,
+    *,
+    fs_hz: float,
+    freq_hz: float | None = None,
+    n: int = 10,
+    full_scale_v: float | None = None,
+) -> HarmonicAnalysis:
+    """Harmonics, THD, SNR, SINAD and ENOB of a record (IEEE Std 1241 definitions).
+
+    Parameters
+    ----------
+    y : array_like
+        Record, V.
+    fs_hz : float
+        Sample rate, Hz.
+    freq_hz : float, optional
+        Fundamental frequency, Hz; estimated by a four-parameter sine fit when omitted
+        (then refined: the harmonics are fitted at exact multiples of the fitted value).
+    n : int
+        Highest harmonic included (n >= 2). Harmonics above Nyquist are fitted at their
+        aliased frequencies, as IEEE 1241 prescribes.
+    full_scale_v : float, optional
+        Full-scale range of the digitiser, V, for the IEEE 1241 ENOB.
+
+    Returns
+    -------
+    HarmonicAnalysis
+
+    Notes
+    -----
+    The fundamental and every harmonic are fitted together by linear least squares at
+    known frequencies, so non-coherent records (fractional cycle counts) need no window.
+
+    References
+    ----------
+    .. [1] IEEE Std 1241-2010, 9.1-9.3.
+    """
+    fs = check_positive("fs_hz", fs_hz)
+    if int(n) < 2:
+        raise ValueError(f"n={n!r} must be >= 2")
+    arr = as_record(y, min_samples=16)
+    fit = fit_sine(arr, fs_hz=fs, freq_hz=freq_hz)
+    f1 = fit.freq_hz
+    n_rec = arr.size
+    min_sep = 1.0 / n_rec  # cycles/sample: one DFT bin
+    freqs: list[float] = []
+    shown_hz: list[float] = []
+    index: list[int] = []
+    for k in range(1, int(n) + 1):
+        fa = _aliased_hz(k * f1, fs) / fs
+        shown_hz.append(fa * fs)
+        if k > 1 and (
+            fa < min_sep or 0.5 - fa < min_sep or any(abs(fa - g) < min_sep for g in freqs)
+        ):
+            continue
+        freqs.append(fa)
+        index.append(k)
+    amps, resid, var_factor = _harmonic_lsq(arr, freqs)
+    harmonic_v = [math.nan] * int(n)
+    for k, a in zip(index, amps, strict=True):
+        harmonic_v[k - 1] = float(a)
+    a1 = float(amps[0])
+    dof = max(n_rec - 1 - 2 * len(freqs), 1)
+    sigma2 = float(resid @ resid) / dof
+    u_h = math.sqrt(sigma2 * var_factor)  # per cos/sin coefficient ~ per amplitude
+    harm = np.array([harmonic_v[k - 1] for k in index[1:]])
+    s = float(np.sqrt(np.sum(harm**2))) if harm.size else 0.0
+    thd = s / a1 if a1 > 0 else math.inf
+    # propagation: d thd / d h_k = h_k / (S A1); d thd / d A1 = -thd / A1; the floor is the
+    # spread of a THD made of noise alone (all harmonics zero)
+    u_prop = math.hypot(u_h / a1, thd * u_h / a1) if a1 > 0 else math.inf
+    u_floor = u_h * math.sqrt(max(harm.size, 1)) / a1 if a1 > 0 else math.inf
+    u_thd = max(u_prop, u_floor) if thd < 3 * u_floor else u_prop
+    nad_rms = fit.residual_rms_v
+    noise_rms = math.sqrt(float(resid @ resid) / n_rec)
+    signal_rms = a1 / math.sqrt(2.0)
+    sinad = db20(signal_rms / nad_rms) if nad_rms > 0 else math.inf
+    snr = db20(signal_rms / noise_rms) if noise_rms > 0 else math.inf
+    if full_scale_v is not None:
+        fsr = check_positive("full_scale_v", full_scale_v)
+        enob = math.log2(fsr / (math.sqrt(12.0) * nad_rms)) if nad_rms > 0 else math.inf
+    else:
+        enob = (sinad - 1.76) / 6.02
+    return HarmonicAnalysis(
+        fundamental_hz=f1,
+        harmonic_v=tuple(harmonic_v),
+        harmonic_hz=tuple(shown_hz),
+        u_harmonic_v=u_h,
+        thd_ratio=thd,
+        u_thd_ratio=u_thd,
+        thd_db=db20(thd),
+        snr_db=snr,
+        sinad_db=sinad,
+        enob=enob,
+        nad_rms_v=nad_rms,
+        noise_rms_v=noise_rms,
+        n_samples=n_rec,
+        method=f"ieee1241 least-squares harmonic fit, {fit.method} fundamental",
+    )
+
+
+def _prominence_db(y: NDArray[np.float64]) -> tuple[float, float]:
+    """(peak-over-median of the Hann periodogram in dB, peak frequency in cycles/sample)."""
+    x = (y - y.mean()) * _hann(y.size)
+    p = np.abs(np.fft.rfft(x)) ** 2
+    p = p[1:]
+    k = int(np.argmax(p))
+    floor = float(np.median(p))
+    if floor <= 0.0:
+        return (math.inf if p[k] > 0 else 0.0), (k + 1) / y.size
+    return db10(float(p[k]) / floor), (k + 1) / y.size
+
+
+def detect_oscillation(
+    y: ArrayLike,
+    *,
+    fs_hz: float,
+    band_hz: tuple[float, float] | None = None,
+    min_snr_db: float = 10.0,
+    min_prominence_db: float = 20.0,
+    min_vpp_v: float = 0.0,
+) -> Detection:
+    """Decide whether a record holds an oscillation, and return the evidence.
+
+    Three tests, all of which must pass: the fundamental stands above the noise
+    (IEEE 1241 SNR, harmonics removed, >= ``min_snr_db``); the strongest spectral line
+    stands above the median of a Hann-window periodogram (>= ``min_prominence_db``); its
+    frequency lies inside ``band_hz``. Optionally the fitted Vpp must reach ``min_vpp_v``.
+
+    Parameters
+    ----------
+    y : array_like
+        Record, V.
+    fs_hz : float
+        Sample rate, Hz.
+    band_hz : (float, float), optional
+        Expected frequency band (lo, hi), Hz, inclusive.
+    min_snr_db, min_prominence_db : float
+        Thresholds, dB. The defaults sit well above what white noise gives: the largest of
+        N/2 periodogram bins of noise is about ln(N/2)/ln 2 times the median (10 dB at
+        N = 2048), common practice, no published source for the margin.
+    min_vpp_v : float
+        Smallest fitted peak-to-peak accepted, V.
+
+    Returns
+    -------
+    Detection
+    """
+    fs = check_positive("fs_hz", fs_hz)
+    arr = as_record(y, min_samples=16)
+    if band_hz is not None:
+        lo, hi = (float(v) for v in band_hz)
+        if not 0.0 <= lo < hi:
+            raise ValueError(f"band_hz={band_hz!r} must be (lo, hi) with 0 <= lo < hi")
+    if np.ptp(arr) == 0.0:
+        return Detection(False, -math.inf, 0.0, math.nan, 0.0, band_hz is None,
+                         f"record is flat at {arr[0]:.4g} V: no signal")
+    prominence, f_peak = _prominence_db(arr)
+    try:
+        ana = harmonics(arr, fs_hz=fs, n=5)
+    except MeasurementError as exc:
+        return Detection(False, -math.inf, prominence, f_peak * fs, 0.0, False,
+                         f"no sine could be fitted: {exc.reason}")
+    freq = ana.fundamental_hz
+    vpp = 2.0 * ana.harmonic_v[0]
+    in_band = True if band_hz is None else (lo <= freq <= hi)
+    failures = []
+    if ana.snr_db < min_snr_db:
+        failures.append(f"SNR {ana.snr_db:.1f} dB < {min_snr_db:g} dB")
+    if prominence < min_prominence_db:
+        failures.append(f"peak prominence {prominence:.1f} dB < {min_prominence_db:g} dB")
+    if not in_band:
+        failures.append(f"frequency {freq:.6g} Hz outside band {lo:g}..{hi:g} Hz")
+    if vpp < min_vpp_v:
+        failures.append(f"Vpp {vpp:.4g} V < {min_vpp_v:g} V")
+    if failures:
+        reason = "not oscillating: " + "; ".join(failures)
+    else:
+        reason = (
+            f"oscillating at {freq:.6g} Hz, {vpp:.4g} Vpp, SNR {ana.snr_db:.1f} dB, "
+            f"prominence {prominence:.1f} dB"
+        )
+    return Detection(
+        oscillating=not failures,
+        snr_db=ana.snr_db,
+        prominence_db=prominence,
+        freq_hz=freq,
+        vpp_v=vpp,
+        in_band=in_band,
+        reason=reason,
+    )
