@@ -1,0 +1,281 @@
+"""Measuring the board output at one rail point (bench side, shared by the procedures).
+
+:func:`measure_output` autoscales the output channel, acquires K records, and estimates
+Vpp (IEEE 1057 sine fit by default, robust record statistics on request -- the row says
+which in ``vpp_method``), frequency, THD, oscillating-or-not with its evidence, and the
+supply current. Clipped records are refused: the channel is re-autoscaled and the record
+taken again, a bounded number of times.
+
+:func:`probe_oscillation` is the cheap decision used by the threshold searches: the scope
+set-up is fixed in advance (:class:`ScopeSetup`, found once at a running rail), so each
+decision costs exactly one acquisition.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from dataclasses import asdict, dataclass
+from typing import Any, Literal
+
+import numpy as np
+
+from benchctl import analysis
+from benchctl.errors import MeasurementError
+from benchctl.procedures.base import Column
+from benchctl.procedures.common import Vote, finite_or_none
+
+VppMethod = Literal["fit", "robust"]
+
+OUTPUT_COLUMNS: tuple[Column, ...] = (
+    Column("rail_set_v", "V", "rail setpoint"),
+    Column("rail_v", "V", "rail readback at the supply"),
+    Column("current_a", "A", "supply current readback"),
+    Column("oscillating", "", "the detector's verdict"),
+    Column("osc_snr_db", "dB", "detector evidence: spectral peak above the noise floor"),
+    Column("osc_evidence", "", "detector's reason, in words"),
+    Column("vpp_v", "V", "output peak-to-peak (mean over the records)"),
+    Column("u_vpp_v", "V", "standard uncertainty of vpp_v"),
+    Column("vpp_method", "", "estimator used for vpp_v"),
+    Column("freq_hz", "Hz", "output frequency"),
+    Column("u_freq_hz", "Hz", "standard uncertainty of freq_hz"),
+    Column("offset_v", "V", "output DC level (sine fit offset)"),
+    Column("thd_db", "dB", "total harmonic distortion (IEEE 1241), dB re carrier"),
+    Column("records", "", "records averaged"),
+    Column("rescales", "", "re-autoscales after clipped records"),
+)
+"""Columns every procedure that measures the output records (rows from :func:`measure_output`)."""
+
+
+@dataclass(frozen=True)
+class ScopeSetup:
+    """A fixed output-channel set-up: vertical scale/offset and timebase."""
+
+    scale_v_div: float
+    offset_v: float
+    window_s: float
+    sample_rate_hz: float
+    coupling: str = "dc"
+
+    def apply(self, scope: Any, channel: int) -> None:
+        scope.setup_channel(channel, scale_v_div=self.scale_v_div, offset_v=self.offset_v,
+                            coupling=self.coupling, probe=1.0)
+        scope.set_timebase(window_s=self.window_s, sample_rate_hz=self.sample_rate_hz)
+
+
+@dataclass(frozen=True)
+class MeasureOptions:
+    """How :func:`measure_output` measures.
+
+    records : int -- K records per point (mean and its standard error).
+    cycles : float -- carrier cycles per record wanted from autoscale.
+    vpp_method : "fit" | "robust".
+    max_rescales : int -- re-autoscales allowed after clipped records.
+    band_hz : (lo, hi) or None -- expected carrier band for the detector.
+    timeout_s : float -- per acquisition.
+    """
+
+    records: int = 2
+    cycles: float = 200.0
+    vpp_method: VppMethod = "fit"
+    max_rescales: int = 3
+    band_hz: tuple[float, float] | None = None
+    timeout_s: float = 5.0
+    first_window_s: float | None = None
+
+    def __post_init__(self) -> None:
+        if self.records < 1:
+            raise ValueError(f"records={self.records!r} must be >= 1")
+        if self.vpp_method not in ("fit", "robust"):
+            raise ValueError(f"vpp_method={self.vpp_method!r} must be 'fit' or 'robust'")
+
+
+def _fs(wf: Any) -> float:
+    return 1.0 / float(wf.dt_s)
+
+
+def _detect(volts: np.ndarray, fs_hz: float, band_hz: tuple[float, float] | None) -> Any:
+    kw: dict[str, Any] = {"fs_hz": fs_hz}
+    if band_hz is not None:
+        kw["band_hz"] = band_hz
+    return analysis.detect_oscillation(volts, **kw)
+
+
+def acquire_output(ctx: Any, *, timeout_s: float) -> Any:
+    """One acquisition; returns the output channel's Waveform."""
+    scope = ctx.bench.scope
+    scope.acquire(timeout_s=timeout_s)
+    return scope.fetch(ctx.bench.wiring.output_channel)
+
+
+def _autoscale(scope: Any, channel: int, opts: MeasureOptions) -> Any:
+    """Autoscale; a record with no periodic signal (a board that is off) may not settle --
+    then the last set-up stays and the detector decides on the record taken with it."""
+    kw: dict[str, Any] = {"cycles": opts.cycles, "timeout_s": opts.timeout_s}
+    if opts.first_window_s is not None:
+        kw["first_window_s"] = opts.first_window_s
+    try:
+        return scope.autoscale(channel, **kw)
+    except MeasurementError:
+        return None
+
+
+def measure_output(ctx: Any, opts: MeasureOptions, *, rail_set_v: float) -> dict[str, Any]:
+    """Measure the output at the present rail; returns a row of :data:`OUTPUT_COLUMNS`.
+
+    Raises
+    ------
+    MeasurementError
+        Still clipped after ``opts.max_rescales`` re-autoscales.
+    """
+    bench = ctx.bench
+    ch = bench.wiring.output_channel
+    scope = bench.scope
+    rescales = 0
+    _autoscale(scope, ch, opts)
+    waves: list[Any] = []
+    while len(waves) < opts.records:
+        wf = acquire_output(ctx, timeout_s=opts.timeout_s)
+        if wf.clipped_samples > 0:
+            if rescales >= opts.max_rescales:
+                raise MeasurementError(
+                    f"output at rail {rail_set_v:g} V still clipped ({wf.clipped_samples} samples)"
+                    f" after {rescales} re-autoscales")
+            rescales += 1
+            waves.clear()
+            _autoscale(scope, ch, opts)
+            continue
+        waves.append(wf)
+    row = analyse_records(waves, opts)
+    row.update(rail_set_v=float(rail_set_v), rescales=rescales)
+    row["rail_v"] = finite_or_none(bench.supply.measure_voltage())
+    row["current_a"] = finite_or_none(bench.supply.measure_current())
+    return row
+
+
+def analyse_records(waves: list[Any], opts: MeasureOptions) -> dict[str, Any]:
+    """Estimates from K unclipped records (pure; the part of :func:`measure_output` after I/O)."""
+    first = waves[0]
+    fs = _fs(first)
+    det = _detect(np.asarray(first.volts, dtype=float), fs, opts.band_hz)
+    row: dict[str, Any] = {
+        "oscillating": bool(det.oscillating),
+        "osc_snr_db": finite_or_none(det.snr_db),
+        "osc_evidence": str(det.reason),
+        "records": len(waves),
+        "vpp_method": opts.vpp_method,
+        "vpp_v": None, "u_vpp_v": None, "freq_hz": None, "u_freq_hz": None, "thd_db": None,
+        "offset_v": None,
+    }
+    if not det.oscillating:
+        # No carrier: report the robust spread of what is there (noise), no frequency.
+        est = analysis.vpp_robust(np.asarray(first.volts, dtype=float))
+        row.update(vpp_v=finite_or_none(est.value), u_vpp_v=finite_or_none(est.u),
+                   vpp_method="robust")
+        return row
+    vpp, uvpp, freq, ufreq, thd, offs = [], [], [], [], [], []
+    for wf in waves:
+        y = np.asarray(wf.volts, dtype=float)
+        amp = analysis.measure_amplitude(y, fs_hz=_fs(wf), clipped_samples=wf.clipped_samples,
+                                         method=opts.vpp_method)
+        vpp.append(amp.vpp_v)
+        uvpp.append(amp.u_vpp_v)
+        freq.append(amp.freq_hz)
+        ufreq.append(amp.u_freq_hz)
+        offs.append(amp.offset_v)
+        try:
+            thd.append(analysis.harmonics(y, fs_hz=_fs(wf), freq_hz=amp.freq_hz).thd_db)
+        except MeasurementError:
+            pass
+    row.update(
+        vpp_v=float(np.mean(vpp)), u_vpp_v=_u_mean(vpp, uvpp),
+        freq_hz=float(np.mean(freq)), u_freq_hz=_u_mean(freq, ufreq),
+        thd_db=finite_or_none(np.mean(thd)) if thd else None,
+        offset_v=float(np.mean(offs)),
+    )
+    return row
+
+
+def _u_mean(values: list[float], u_each: list[float]) -> float:
+    """Standard uncertainty of a mean of K estimates.
+
+    The larger of the scatter-based standard error (Type A, GUM 4.2.3) and the estimators'
+    own uncertainty divided by sqrt(K) -- with K = 2 the scatter alone is a poor estimate.
+    """
+    k = len(values)
+    own = math.sqrt(sum(u * u for u in u_each)) / k
+    if k < 2:
+        return float(own)
+    scatter = float(np.std(values, ddof=1)) / math.sqrt(k)
+    return float(max(own, scatter))
+
+
+# --------------------------------------------------------------------------------------
+# decisions for threshold searches
+
+
+def vote_from(detection: Any, *, clear_margin_db: float, min_snr_db: float = 10.0,
+              min_prominence_db: float = 20.0) -> Vote:
+    """Turn a detector result into a :class:`Vote`.
+
+    The detector says "oscillating" when its SNR and its spectral-peak prominence both
+    pass their thresholds (``min_snr_db``, ``min_prominence_db``: the detector's defaults),
+    so the signed score is the smaller of the two margins, dB. The vote is clear when that
+    score is at least ``clear_margin_db`` from zero and agrees with the verdict.
+    """
+    snr = finite_or_none(getattr(detection, "snr_db", None))
+    prom = finite_or_none(getattr(detection, "prominence_db", None))
+    osc = bool(detection.oscillating)
+    if snr is None and prom is None:
+        # a flat record or no fittable sine: plainly not oscillating
+        return Vote(osc, not osc, -clear_margin_db if not osc else 0.0)
+    margins = [m for m in ((snr - min_snr_db) if snr is not None else None,
+                           (prom - min_prominence_db) if prom is not None else None)
+               if m is not None]
+    score = float(min(margins))
+    clear = abs(score) >= clear_margin_db and (score > 0) == osc
+    return Vote(osc, clear, score)
+
+
+def probe_oscillation(ctx: Any, setup: ScopeSetup, *, band_hz: tuple[float, float] | None,
+                      timeout_s: float = 5.0) -> tuple[Any, Any]:
+    """One acquisition with a fixed set-up; returns ``(detection, waveform)``."""
+    ch = ctx.bench.wiring.output_channel
+    setup.apply(ctx.bench.scope, ch)
+    wf = acquire_output(ctx, timeout_s=timeout_s)
+    det = _detect(np.asarray(wf.volts, dtype=float), _fs(wf), band_hz)
+    return det, wf
+
+
+def setup_from_reading(row: Mapping[str, Any], *, cycles: float, samples_per_cycle: float,
+                       headroom: float = 1.4) -> ScopeSetup:
+    """A fixed scope set-up for a board running at the amplitude and frequency of ``row``.
+
+    Full screen (8 div) spans ``headroom`` x the measured Vpp, so smaller amplitudes near a
+    threshold are never clipped; the window holds ``cycles`` carrier cycles at
+    ``samples_per_cycle`` samples per cycle.
+    """
+    vpp = finite_or_none(row.get("vpp_v"))
+    freq = finite_or_none(row.get("freq_hz"))
+    if not row.get("oscillating") or vpp is None or freq is None or vpp <= 0 or freq <= 0:
+        raise MeasurementError("no oscillation at the running rail to set the scope up from")
+    offset = finite_or_none(row.get("offset_v")) or 0.0
+    return ScopeSetup(scale_v_div=headroom * vpp / 8.0, offset_v=offset,
+                      window_s=cycles / freq, sample_rate_hz=samples_per_cycle * freq)
+
+
+def setup_as_row(setup: ScopeSetup) -> dict[str, Any]:
+    return {f"scope_{k}": v for k, v in asdict(setup).items()}
+
+
+def setup_from_row(row: Mapping[str, Any]) -> ScopeSetup:
+    return ScopeSetup(**{k: row[f"scope_{k}"] for k in ScopeSetup.__dataclass_fields__})
+
+
+SETUP_COLUMNS: tuple[Column, ...] = (
+    Column("scope_scale_v_div", "V/div", "fixed vertical scale used by the decisions"),
+    Column("scope_offset_v", "V", "fixed vertical offset"),
+    Column("scope_window_s", "s", "record window"),
+    Column("scope_sample_rate_hz", "Hz", "sample rate"),
+    Column("scope_coupling", "", "coupling"),
+)
