@@ -1,0 +1,341 @@
+"""Plots of a step's points, drawn on :class:`matplotlib.figure.Figure` objects (Agg).
+
+No pyplot: every figure is created here, saved and dropped, so no global state leaks
+between calls. Plot kinds register with :func:`plot_kind`; each looks at the columns that
+exist, draws what it can and claims the columns it used. Columns nobody claims get a plot
+of their own against the rail (or the point order) by the generic kind, so nothing that
+was measured is silently left out.
+
+Column naming the plots understand (the procedures' units-in-names convention):
+``rail_v`` on x; ``vpp*_v`` amplitude; ``freq*_hz`` frequency; ``*current*_a`` or ``i_*_a``
+supply current; ``thd*`` distortion; ``direction`` (up/down) for hysteresis; ``*depth*`` with
+``*index*`` for modulation; uncertainty of ``X_v`` in ``X_u_v``, ``X_std_v``, ``X_unc_v``,
+``X_sigma_v``, ``u_X_v`` or ``X_v_u``; cells ending in ``.npz`` reference waveforms.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from matplotlib.figure import Figure
+
+from benchctl.errors import ConfigError
+from benchctl.report.runview import X_CANDIDATES, RunView, StepData, finite
+
+MAX_GENERIC_PLOTS = 8
+MAX_WAVEFORMS = 4
+_UNC_MARK = re.compile(r"(^u_)|(_(u|unc|std|sigma)(_|$))")
+
+
+@dataclass
+class Drawn:
+    """One saved plot."""
+
+    kind: str
+    title: str
+    file: str  # relative to the report folder
+
+
+@dataclass
+class StepPlots:
+    """What was drawn for a step, and what was not, in words."""
+
+    step: StepData
+    drawn: list[Drawn] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)
+
+
+@dataclass
+class _Ctx:
+    run: RunView
+    step: StepData
+    x: str | None
+    used: set[str]
+    notes: list[str]
+
+
+PlotFn = Callable[[_Ctx], list[tuple[str, Figure]]]
+KINDS: dict[str, PlotFn] = {}
+
+
+def plot_kind(name: str) -> Callable[[PlotFn], PlotFn]:
+    """Register a plot kind; it returns ``[(title, figure), ...]`` (empty if not applicable)."""
+
+    def deco(fn: PlotFn) -> PlotFn:
+        if name in KINDS:
+            raise ValueError(f"plot kind {name!r} registered twice")
+        KINDS[name] = fn
+        return fn
+
+    return deco
+
+
+def draw_step(run: RunView, step: StepData, out_dir: Path) -> StepPlots:
+    """Draw every applicable plot of ``step`` into ``out_dir``; return what was done."""
+    result = StepPlots(step)
+    frame = step.frame
+    if frame.empty:
+        result.notes.append("no points recorded")
+        return result
+    x = next((c for c in X_CANDIDATES if c in frame.columns and _numeric(frame[c]) is not None), None)
+    ctx = _Ctx(run, step, x, {"point"} | ({x} if x else set()), result.notes)
+    for kind, fn in KINDS.items():
+        for n, (title, fig) in enumerate(fn(ctx)):
+            name = f"{step.label}-{kind}{'' if n == 0 else f'-{n + 1}'}.png"
+            fig.savefig(out_dir / name, format="png", dpi=100)
+            result.drawn.append(Drawn(kind, title, name))
+    return result
+
+
+# ---------------------------------------------------------------- helpers
+def _numeric(series: pd.Series) -> np.ndarray | None:
+    """Column as float array (bools as 0/1), or None if it holds no finite number."""
+    values = []
+    for v in series.tolist():
+        if isinstance(v, bool):
+            values.append(float(v))
+        else:
+            x = finite(v) if not isinstance(v, str) else None
+            values.append(math.nan if x is None else x)
+    arr = np.asarray(values, dtype=float)
+    return arr if np.isfinite(arr).any() else None
+
+
+def _is_unc(name: str) -> bool:
+    return bool(_UNC_MARK.search(name))
+
+
+def _uncertainty_column(frame: pd.DataFrame, column: str) -> str | None:
+    stem, _, unit = column.rpartition("_")
+    candidates = [f"u_{column}", f"{column}_u", f"{column}_std"]
+    if stem:
+        candidates += [f"{stem}_{tag}_{unit}" for tag in ("u", "std", "unc", "sigma")]
+    return next((c for c in candidates if c in frame.columns), None)
+
+
+def _columns(ctx: _Ctx, test: Callable[[str], bool]) -> list[str]:
+    return [
+        c for c in ctx.step.frame.columns
+        if c not in ctx.used and not _is_unc(c) and test(c) and _numeric(ctx.step.frame[c]) is not None
+    ]
+
+
+def _xy_axes(title: str, xlabel: str, ylabel: str) -> tuple[Figure, object]:
+    fig = Figure(figsize=(6.4, 4.0), layout="constrained")
+    ax = fig.add_subplot()
+    ax.set_title(title)
+    ax.set_xlabel(xlabel)
+    ax.set_ylabel(ylabel)
+    ax.grid(True, alpha=0.3)
+    return fig, ax
+
+
+def _xvalues(ctx: _Ctx) -> tuple[np.ndarray, str]:
+    if ctx.x is None:
+        note = "no rail_v column: values plotted against point order"
+        if note not in ctx.notes:
+            ctx.notes.append(note)
+        return np.arange(len(ctx.step.frame), dtype=float), "point (order recorded)"
+    return _numeric(ctx.step.frame[ctx.x]), f"{ctx.x} (V)" if ctx.x.endswith("_v") else ctx.x
+
+
+def _unit_label(column: str) -> str:
+    unit = column.rpartition("_")[2]
+    known = {"v": "V", "hz": "Hz", "a": "A", "db": "dB", "pct": "%", "s": "s", "w": "W", "dbc": "dBc"}
+    return f"{column} ({known[unit]})" if unit in known and "_" in column else column
+
+
+def _series_plot(ctx: _Ctx, columns: list[str], title: str, *, shade: bool = False) -> Figure:
+    frame = ctx.step.frame
+    x, xlabel = _xvalues(ctx)
+    ylabel = _unit_label(columns[0]) if len(columns) == 1 else ", ".join(columns)
+    fig, ax = _xy_axes(title, xlabel, ylabel)
+    style = "o" if "direction" in frame.columns else "o-"  # up and down: no joining line
+    for column in columns:
+        y = _numeric(frame[column])
+        unc = _uncertainty_column(frame, column)
+        yerr = _numeric(frame[unc]) if unc else None
+        if yerr is not None:
+            ax.errorbar(x, y, yerr=np.nan_to_num(yerr), fmt=style, ms=3, lw=1, capsize=2, label=column)
+            ctx.used.add(unc)
+        else:
+            ax.plot(x, y, style, ms=3, lw=1, label=column)
+        ctx.used.add(column)
+    if shade:
+        _shade_linear(ctx, ax)
+    if len(columns) > 1 or shade:
+        ax.legend(fontsize="small")
+    return fig
+
+
+def _shade_linear(ctx: _Ctx, ax) -> None:
+    params = ctx.run.step_parameters(ctx.step.name)
+    lo = finite(params.get("linear_lo_v", {}).get("value"))
+    hi = finite(params.get("linear_hi_v", {}).get("value"))
+    if lo is not None and hi is not None and ctx.x is not None:
+        ax.axvspan(min(lo, hi), max(lo, hi), color="tab:green", alpha=0.15,
+                   label=f"linear region {lo:.3g}-{hi:.3g} V")
+
+
+# ---------------------------------------------------------------- kinds
+@plot_kind("amplitude")
+def _amplitude(ctx: _Ctx) -> list[tuple[str, Figure]]:
+    cols = _columns(ctx, lambda c: c.startswith("vpp") and c.endswith("_v"))
+    if not cols:
+        return []
+    return [("Output amplitude vs rail", _series_plot(ctx, cols, "Output amplitude vs rail", shade=True))]
+
+
+@plot_kind("frequency")
+def _frequency(ctx: _Ctx) -> list[tuple[str, Figure]]:
+    cols = _columns(ctx, lambda c: c.startswith("freq") and c.endswith("_hz"))
+    if not cols:
+        return []
+    return [("Frequency vs rail", _series_plot(ctx, cols, "Frequency vs rail"))]
+
+
+@plot_kind("current")
+def _current(ctx: _Ctx) -> list[tuple[str, Figure]]:
+    cols = _columns(ctx, lambda c: c.endswith("_a") and ("current" in c or c.startswith("i_")))
+    if not cols:
+        return []
+    return [("Supply current vs rail", _series_plot(ctx, cols, "Supply current vs rail"))]
+
+
+@plot_kind("thd")
+def _thd(ctx: _Ctx) -> list[tuple[str, Figure]]:
+    cols = _columns(ctx, lambda c: c.startswith("thd"))
+    if not cols:
+        return []
+    return [("Distortion (THD) vs rail", _series_plot(ctx, cols, "Distortion (THD) vs rail"))]
+
+
+@plot_kind("hysteresis")
+def _hysteresis(ctx: _Ctx) -> list[tuple[str, Figure]]:
+    frame = ctx.step.frame
+    if "direction" not in frame.columns or ctx.x is None:
+        return []
+    ctx.used.add("direction")
+    candidates = [c for c in frame.columns if c.startswith("vpp") and c.endswith("_v") and not _is_unc(c)]
+    if not candidates:
+        candidates = [c for c in frame.columns if c not in ("point", "direction", ctx.x)
+                      and not _is_unc(c) and _numeric(frame[c]) is not None]
+    if not candidates:
+        ctx.notes.append("direction column present but no numeric column to show hysteresis")
+        return []
+    column = candidates[0]
+    fig, ax = _xy_axes("Sweep up vs down (hysteresis)", f"{ctx.x} (V)", _unit_label(column))
+    x = _numeric(frame[ctx.x])
+    y = _numeric(frame[column])
+    directions = frame["direction"].astype(str).tolist()
+    for label in dict.fromkeys(directions):
+        mask = np.array([d == label for d in directions])
+        ax.plot(x[mask], y[mask], "o-", ms=3, lw=1, label=f"{label}")
+    ax.legend(fontsize="small", title="direction")
+    ctx.used.add(column)
+    return [("Sweep up vs down (hysteresis)", fig)]
+
+
+@plot_kind("modulation")
+def _modulation(ctx: _Ctx) -> list[tuple[str, Figure]]:
+    frame = ctx.step.frame
+    depth = next((c for c in frame.columns if "depth" in c and _numeric(frame[c]) is not None), None)
+    if depth is None:
+        return []
+    cols = [c for c in frame.columns if "index" in c and not _is_unc(c) and _numeric(frame[c]) is not None]
+    if not cols:
+        ctx.notes.append(f"{depth} present but no modulation index column")
+        return []
+    fig, ax = _xy_axes("Modulation index: measured and predicted vs depth", depth, "modulation index")
+    d = _numeric(frame[depth])
+    order = np.argsort(d, kind="stable")
+    for column in cols:
+        y = _numeric(frame[column])
+        style = "s--" if "pred" in column else "o-"
+        unc = _uncertainty_column(frame, column)
+        if unc and _numeric(frame[unc]) is not None:
+            ax.errorbar(d[order], y[order], yerr=np.nan_to_num(_numeric(frame[unc])[order]),
+                        fmt=style, ms=3, lw=1, capsize=2, label=column)
+            ctx.used.add(unc)
+        else:
+            ax.plot(d[order], y[order], style, ms=3, lw=1, label=column)
+        ctx.used.add(column)
+    ax.legend(fontsize="small")
+    ctx.used.add(depth)
+    return [("Modulation index vs depth", fig)]
+
+
+@plot_kind("waveform")
+def _waveform(ctx: _Ctx) -> list[tuple[str, Figure]]:
+    frame = ctx.step.frame
+    ref_cols = [c for c in frame.columns
+                if any(isinstance(v, str) and v.endswith(".npz") for v in frame[c].tolist())]
+    if not ref_cols:
+        return []
+    out = []
+    for column in ref_cols:
+        ctx.used.add(column)
+        refs = [(p, v) for p, v in zip(frame["point"].tolist(), frame[column].tolist(), strict=True)
+                if isinstance(v, str) and v.endswith(".npz")]
+        startup = "start" in ctx.step.name.lower()
+        title = "Start-up envelope" if startup else f"Recorded waveforms ({column})"
+        fig, ax = _xy_axes(title, "time (s)", "V")
+        plotted = 0
+        for point, rel in refs[:MAX_WAVEFORMS]:
+            try:
+                data = ctx.run.folder.load_waveform(rel)
+            except ConfigError as exc:
+                ctx.notes.append(f"waveform of point {point!r}: {exc}")
+                continue
+            plotted += _draw_record(ax, data, str(point), startup=startup)
+        if len(refs) > MAX_WAVEFORMS:
+            ctx.notes.append(f"{column}: first {MAX_WAVEFORMS} of {len(refs)} waveforms shown")
+        if plotted:
+            ax.legend(fontsize="small")
+            out.append((title, fig))
+    return out
+
+
+def _draw_record(ax, data: dict[str, np.ndarray], point: str, *, startup: bool) -> int:
+    arrays = {k: v for k, v in data.items() if v.ndim == 1 and v.size > 1 and v.dtype.kind in "fiu"}
+    time = arrays.pop("t_s", None)
+    envelopes = [k for k in arrays if "envelope" in k]
+    raw = [k for k in arrays if k not in envelopes]
+    keys = raw[:1] + envelopes if envelopes else raw[:2]
+    drawn = 0
+    for key in keys:
+        y = arrays[key].astype(float)
+        if time is not None and time.size == y.size:
+            t = time.astype(float)
+        else:
+            dt = float(data["dt_s"]) if "dt_s" in data and data["dt_s"].size == 1 else None
+            t0 = float(data["t0_s"]) if "t0_s" in data and data["t0_s"].size == 1 else 0.0
+            t = t0 + np.arange(y.size) * dt if dt else np.arange(y.size, dtype=float)
+        faint = bool(envelopes) and "envelope" not in key
+        ax.plot(t, y, lw=0.6 if faint else 1.2, alpha=0.45 if faint else 1.0, label=f"{point}: {key}")
+        drawn += 1
+    return drawn
+
+
+@plot_kind("other")
+def _other(ctx: _Ctx) -> list[tuple[str, Figure]]:
+    frame = ctx.step.frame
+    rest = [c for c in frame.columns if c not in ctx.used and not _is_unc(c)]
+    numeric = [c for c in rest if _numeric(frame[c]) is not None]
+    text = [c for c in rest if c not in numeric]
+    out = []
+    for column in numeric[:MAX_GENERIC_PLOTS]:
+        label = f"{column} vs rail" if ctx.x else f"{column} by point"
+        out.append((label, _series_plot(ctx, [column], label)))
+    if len(numeric) > MAX_GENERIC_PLOTS:
+        ctx.notes.append(f"not plotted (more than {MAX_GENERIC_PLOTS} other columns): "
+                         + ", ".join(numeric[MAX_GENERIC_PLOTS:]))
+    if text:
+        ctx.notes.append("not plotted (no numbers): " + ", ".join(text))
+    return out
