@@ -242,3 +242,38 @@ def test_a_rail_above_the_limit_is_refused_before_anything_is_sent():
     proc, params = _params("rail_sweep", stop_v=6.5)
     with pytest.raises(SafetyError, match="max_rail_v"):
         proc.run(ctx, params)
+
+
+def test_linear_region_and_pushing_recover_the_fake_boards_laws():
+    ctx = DictContext(_bench())
+    proc, params = _params("linear_region", start_v=3.1, stop_v=5.9, step_v=0.2, records=1)
+    res = {r.name: r for r in proc.run(ctx, params)}
+    slope = res["supply_sensitivity_vpp_per_v"]
+    # The fake board's law is exactly Vpp = 0.6 V/V * rail - 1.02 V: the slope must agree
+    # within 4 standard uncertainties (noise 2 mV rms per sample, 4000-sample records).
+    assert abs(slope.value - 0.6) <= 4 * slope.uncertainty + 1e-4
+    assert res["linear_lo_v"].value <= 3.11 and res["linear_hi_v"].value >= 5.89
+    earlier = {"linear_region": (res, list(ctx.rows.values()))}
+    ctx2 = DictContext(_bench(), earlier=earlier)
+    proc2, params2 = _params("pushing")
+    got = {r.name: r for r in proc2.run(ctx2, params2)}
+    assert ctx2.measured == len(ctx.rows)  # rows copied, nothing measured on the bench
+    assert abs(got["pushing_hz_per_v"].value) <= 4 * got["pushing_hz_per_v"].uncertainty + 1e-3
+    # fake current law: 8 mA + 3 mA/V while oscillating (exact, no noise)
+    assert got["current_slope_a_per_v"].value == pytest.approx(0.003, rel=1e-9)
+    assert got["current_at_nominal_a"].value == pytest.approx(0.008 + 0.003 * 5.0, rel=1e-9)
+
+
+def test_startup_time_of_an_exponential_envelope_matches_the_closed_form():
+    from benchctl.procedures.startup_time import analyse_shot
+
+    fs, fc, tau, t0 = 8e6, 1e6, 100e-6, 50e-6
+    t = np.arange(int(2e-3 * fs)) / fs
+    grow = np.where(t >= t0, 1 - np.exp(-(t - t0) / tau), 0.0)
+    out = 0.6 * grow * np.sin(2 * np.pi * fc * t) + np.random.default_rng(1).normal(0, 1e-3, t.size)
+    rail = np.where(t >= t0, 5.0, 0.0)
+    got = analyse_shot(t, out, rail, fs_hz=fs, carrier_hz=fc, rail_target_v=5.0)
+    # 1 - exp(-t/tau) = 0.9 at t = tau ln 10 (closed form); the step sits between samples,
+    # so allow one sample period, plus 2 % for the envelope smoothing.
+    assert got["startup_time_s"] == pytest.approx(tau * math.log(10), rel=0.02, abs=1 / fs)
+    assert got["settled"] and got["final_vpp_v"] == pytest.approx(1.2, rel=0.01)
