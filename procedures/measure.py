@@ -61,6 +61,7 @@ class ScopeSetup:
         scope.setup_channel(channel, scale_v_div=self.scale_v_div, offset_v=self.offset_v,
                             coupling=self.coupling, probe=1.0)
         scope.set_timebase(window_s=self.window_s, sample_rate_hz=self.sample_rate_hz)
+        scope.set_trigger(source="free")  # an earlier step may have left an edge trigger
 
 
 @dataclass(frozen=True)
