@@ -12,6 +12,7 @@ from collections.abc import Mapping
 from typing import Any
 
 from benchctl import analysis
+from benchctl.errors import ConfigError
 from benchctl.procedures.base import Param, Procedure, Result, register
 from benchctl.procedures.common import RailTracker, check_rail, rail_grid
 from benchctl.procedures.rail_sweep import (
@@ -105,7 +106,7 @@ class LinearRegion(Procedure):
         check_rail(ctx, start_v, what="linear_region start_v")
         check_rail(ctx, stop_v, what="linear_region stop_v")
         if not stop_v > start_v:
-            raise ValueError(f"linear_region: stop_v={stop_v!r} must be above start_v={start_v!r}")
+            raise ConfigError("plan", "params", f"linear_region: stop_v={stop_v!r} must be above start_v={start_v!r}")
         grid = rail_grid(start_v, stop_v, float(params["step_v"]))
         tracker = RailTracker(ctx, settling(params))
         rows = sweep_points(ctx, tracker, measure_options(params), grid, branch="up", tag="",

@@ -74,10 +74,10 @@ class Modulation(Procedure):
         try:
             got = ctx.earlier(params["source"])
         except KeyError:
-            raise ValueError(f"modulation: give centre_v (no earlier step {params['source']!r})") from None
+            raise ConfigError("plan", "params", f"modulation: give centre_v (no earlier step {params['source']!r})") from None
         lo, hi = got.get("linear_lo_v"), got.get("linear_hi_v")
         if lo is None or hi is None or lo.value is None or hi.value is None:
-            raise ValueError(f"modulation: step {params['source']!r} found no linear region; "
+            raise ConfigError("plan", "params", f"modulation: step {params['source']!r} found no linear region; "
                              "give centre_v")
         return round((lo.value + hi.value) / 2, 6)
 
@@ -93,7 +93,7 @@ class Modulation(Procedure):
         for d in depths:  # every peak checked before anything is switched on
             check_rail(ctx, centre + d / 2, what=f"modulation peak (centre + {d:g}/2 Vpp)")
             if centre - d / 2 < 0:
-                raise ValueError(f"modulation: depth {d:g} Vpp swings the rail below 0 V")
+                raise ConfigError("plan", "params", f"modulation: depth {d:g} Vpp swings the rail below 0 V")
         opts = measure_options(params)
         tracker = RailTracker(ctx, settling(params))
         gen = ctx.bench.generator

@@ -15,7 +15,7 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 from benchctl import analysis
-from benchctl.errors import MeasurementError
+from benchctl.errors import ConfigError, MeasurementError
 from benchctl.procedures.base import Column, Param, Procedure, Result, register
 from benchctl.procedures.common import RailTracker, check_rail, point_key, rail_grid
 from benchctl.procedures.rail_sweep import (
@@ -43,7 +43,7 @@ def _find_source(ctx: Any, source: str) -> tuple[str, list[Mapping[str, Any]]] |
         if rows:
             return name, list(rows)
     if source:
-        raise ValueError(f"pushing: no earlier step {source!r} with points in this run")
+        raise ConfigError("plan", "params", f"pushing: no earlier step {source!r} with points in this run")
     return None
 
 

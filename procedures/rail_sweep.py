@@ -17,6 +17,7 @@ import math
 from collections.abc import Mapping, Sequence
 from typing import Any
 
+from benchctl.errors import ConfigError
 from benchctl.procedures.base import Column, Param, Procedure, Result, register
 from benchctl.procedures.common import (
     RailTracker,
@@ -213,7 +214,7 @@ class RailSweep(Procedure):
         for v, what in ((start_v, "start_v"), (stop_v, "stop_v")):
             check_rail(ctx, v, what=f"rail_sweep {what}")
         if not stop_v > start_v:
-            raise ValueError(f"rail_sweep: stop_v={stop_v!r} must be above start_v={start_v!r}")
+            raise ConfigError("plan", "params", f"rail_sweep: stop_v={stop_v!r} must be above start_v={start_v!r}")
         opts = measure_options(params)
         tracker = RailTracker(ctx, settling(params))
         n_grid = len(rail_grid(start_v, stop_v, float(params["step_v"])))

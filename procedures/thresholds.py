@@ -18,6 +18,7 @@ import math
 from collections.abc import Mapping
 from typing import Any
 
+from benchctl.errors import ConfigError
 from benchctl.procedures.base import Column, Param, Procedure, Result, register
 from benchctl.procedures.common import (
     RailTracker,
@@ -128,14 +129,14 @@ class DropoutStartup(Procedure):
             if lo is None or hi is None:
                 br = _earlier_bracket(ctx, f"{what}_v", params["source"]) if params["source"] else None
                 if br is None:
-                    raise ValueError(f"dropout_startup: give lo_v and hi_v (no earlier step "
+                    raise ConfigError("plan", "params", f"dropout_startup: give lo_v and hi_v (no earlier step "
                                      f"{params['source']!r} bracketing {what}_v)")
                 lo = br[0] - margin if lo is None else lo
                 hi = br[1] + margin if hi is None else hi
             lo, hi = round(max(float(lo), 0.0), 6), round(float(hi), 6)
             check_rail(ctx, hi, what=f"dropout_startup {what} range top")
             if not hi > lo:
-                raise ValueError(f"dropout_startup: hi_v={hi!r} must be above lo_v={lo!r}")
+                raise ConfigError("plan", "params", f"dropout_startup: hi_v={hi!r} must be above lo_v={lo!r}")
             out[what] = (lo, hi)
         return out
 
