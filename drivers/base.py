@@ -26,7 +26,13 @@ from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from typing import Any, ClassVar
 
-from benchctl.errors import ConfigError, InstrumentError, InstrumentTimeout
+from benchctl.errors import (
+    ConfigError,
+    ConnectionLost,
+    InstrumentError,
+    InstrumentTimeout,
+    ProtocolError,
+)
 
 from .dialect import OPERATIONS, Dialect, Identity
 from .transport import Transport
@@ -126,7 +132,10 @@ class Instrument:
         except InstrumentTimeout:
             # A query the instrument rejected gets no reply: say why if the queue knows.
             self._unchecked.append(text)
-            self.check_errors()
+            try:
+                self.check_errors()
+            except (InstrumentTimeout, ConnectionLost, ProtocolError):
+                pass  # the queue cannot tell: the timeout is the news
             raise
         if self.strict:
             self._unchecked.append(text)

@@ -24,7 +24,7 @@ Reply = Callable[[bytes, int], bytes | None]  # (message, index) -> reply bytes,
 
 
 class ScriptServer:
-    """One-connection-at-a-time TCP server on 127.0.0.1 whose replies come from ``script``.
+    """TCP server on 127.0.0.1 whose replies come from ``script``.
 
     ``script`` returns the bytes to send for each received line, None to send nothing, or
     the string "close" to drop the connection.
@@ -37,6 +37,7 @@ class ScriptServer:
         self.port = self.sock.getsockname()[1]
         self.received: list[bytes] = []
         self._stop = threading.Event()
+        self._lock = threading.Lock()
         self.thread = threading.Thread(target=self._serve, daemon=True)
 
     @property
@@ -49,32 +50,33 @@ class ScriptServer:
                 conn, _ = self.sock.accept()
             except OSError:
                 continue
-            with conn:
-                conn.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
-                conn.settimeout(0.1)
-                buf = b""
-                while not self._stop.is_set():
-                    try:
-                        data = conn.recv(65536)
-                    except TimeoutError:
-                        continue
-                    except OSError:
-                        break
-                    if not data:
-                        break
-                    buf += data
-                    dropped = False
-                    while b"\n" in buf:
-                        line, buf = buf.split(b"\n", 1)
+            threading.Thread(target=self._connection, args=(conn,), daemon=True).start()
+
+    def _connection(self, conn: socket.socket) -> None:
+        with conn:
+            conn.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
+            conn.settimeout(0.1)
+            buf = b""
+            while not self._stop.is_set():
+                try:
+                    data = conn.recv(65536)
+                except TimeoutError:
+                    continue
+                except OSError:
+                    return
+                if not data:
+                    return
+                buf += data
+                while b"\n" in buf:
+                    line, buf = buf.split(b"\n", 1)
+                    with self._lock:
                         self.received.append(line)
-                        out = self.script(line, len(self.received) - 1)
-                        if out == "close":
-                            dropped = True
-                            break
-                        if out is not None:
-                            conn.sendall(out)
-                    if dropped:
-                        break
+                        index = len(self.received) - 1
+                    out = self.script(line, index)
+                    if out == "close":
+                        return
+                    if out is not None:
+                        conn.sendall(out)
 
     def __enter__(self) -> ScriptServer:
         self.thread.start()
