@@ -22,7 +22,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
-from scipy.signal import hilbert
+from scipy.signal import hilbert, welch
 
 from benchctl.analysis._common import as_record, check_positive
 from benchctl.analysis.spectrum import HarmonicAnalysis, _harmonic_lsq, harmonics
@@ -111,6 +111,22 @@ def _trim(e: NDArray[np.float64], edge_fraction: float) -> NDArray[np.float64]:
     return e[k : e.size - k] if k else e
 
 
+def _psd_inflation(resid: NDArray[np.float64], fs_hz: float, freq_hz: float) -> float:
+    """Residual PSD near ``freq_hz`` over its white-noise level (>= 1; Welch estimate).
+
+    The variance of a least-squares tone or mean estimate in coloured noise is set by the
+    noise density at that frequency; for white noise the ratio is 1.
+    """
+    nper = int(min(resid.size, 1024))
+    f, pxx = welch(resid, fs=fs_hz, nperseg=nper)
+    white = 2.0 * float(np.mean(resid * resid)) / fs_hz
+    if white <= 0.0:
+        return 1.0
+    k = int(np.argmin(np.abs(f - freq_hz)))
+    near = pxx[max(k - 2, 1) : k + 3]
+    return max(1.0, float(np.median(near)) / white) if near.size else 1.0
+
+
 def modulation_index_envelope(
     y: ArrayLike,
     *,
@@ -146,8 +162,14 @@ def modulation_index_envelope(
     if e0 <= 0.0:
         raise MeasurementError(f"envelope mean {e0:.4g} V is not positive: no carrier")
     m = em / e0
-    u_em = 0.5 * fit.u_vpp_v
-    u_m = math.hypot(u_em / e0, m * fit.u_offset_v / e0)
+    # the envelope's noise is coloured (band-limited by the carrier's neighbourhood), so
+    # the white-noise fit uncertainties are inflated by the residual's spectral density
+    # at the modulating frequency and near DC over its mean level
+    resid = env - fit.model(fs_hz=fs)
+    infl_m = _psd_inflation(resid, fs, fit.freq_hz)
+    infl_0 = _psd_inflation(resid, fs, 0.0)
+    u_em = 0.5 * fit.u_vpp_v * math.sqrt(infl_m)
+    u_m = math.hypot(u_em / e0, m * fit.u_offset_v * math.sqrt(infl_0) / e0)
     return ModulationIndex(
         m=m,
         u_m=u_m,

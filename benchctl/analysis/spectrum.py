@@ -138,6 +138,79 @@ def _harmonic_lsq(
     return amps, resid, var_factor
 
 
+def _plan(
+    f1_cycles: float, n_harm: int, n_rec: int
+) -> tuple[list[float], list[float], list[int], list[float]]:
+    """Aliased frequencies (cycles/sample) of harmonics 1..n that can be separated.
+
+    Returns the fitted frequencies, every harmonic's aliased frequency, the harmonic
+    numbers fitted, and d(aliased)/d(f1) for each fitted one (+k, or -k when folded).
+    """
+    min_sep = 1.0 / n_rec  # one DFT bin
+    freqs: list[float] = []
+    shown: list[float] = []
+    index: list[int] = []
+    slope: list[float] = []
+    for k in range(1, n_harm + 1):
+        raw = math.fmod(k * f1_cycles, 1.0)
+        fa = 1.0 - raw if raw > 0.5 else raw
+        shown.append(fa)
+        if k > 1 and (
+            fa < min_sep or 0.5 - fa < min_sep or any(abs(fa - g) < min_sep for g in freqs)
+        ):
+            continue
+        freqs.append(fa)
+        index.append(k)
+        slope.append(-float(k) if raw > 0.5 else float(k))
+    return freqs, shown, index, slope
+
+
+def _refine_fundamental(y: NDArray[np.float64], f1_cycles: float, n_harm: int) -> float:
+    """Gauss-Newton refinement of the fundamental shared by all harmonics (cycles/sample).
+
+    Variable projection: at each frequency the DC, cosine and sine coefficients are
+    solved exactly; the frequency step comes from the linearised multi-harmonic model.
+    """
+    n = y.size
+    t = np.arange(n, dtype=np.float64)
+    t -= 0.5 * (n - 1)
+    f = f1_cycles
+    sse_old = math.inf
+    for _ in range(10):  # bounded: converges in 2-4 steps from the 4-parameter start
+        freqs, _, _, slope = _plan(f, n_harm, n)
+        cols = [np.ones(n)]
+        for fk in freqs:
+            co, si = _cos_sin(2.0 * math.pi * fk, n)
+            cols.extend((co, si))
+        basis = np.vstack(cols)
+        h = basis @ basis.T
+        coef = np.linalg.solve(h, basis @ y)
+        resid = y - coef @ basis
+        sse = float(resid @ resid)
+        if sse > sse_old:
+            break
+        sse_old = sse
+        # d model / d f1 = sum_k dfk/df1 * 2 pi t (-a_k sin + b_k cos)
+        d = np.zeros(n)
+        for j, dk in enumerate(slope):
+            a, b = coef[1 + 2 * j], coef[2 + 2 * j]
+            d += dk * (b * basis[1 + 2 * j] - a * basis[2 + 2 * j])
+        d *= 2.0 * math.pi * t
+        # project d off the linear columns (variable projection Gauss-Newton step)
+        d_perp = d - (np.linalg.solve(h, basis @ d) @ basis)
+        dd = float(d_perp @ d_perp)
+        if dd <= 0.0:
+            break
+        step = float(d_perp @ resid) / dd
+        f_new = f + step
+        u_f = math.sqrt(sse / max(n - basis.shape[0] - 1, 1) / dd)
+        if abs(step) <= 1e-4 * u_f or abs(step) * n <= 1e-12:
+            f = f_new
+            break
+        f = f_new
+    return f
+
+
 def harmonics(
     y: ArrayLike,
     *,
@@ -183,19 +256,12 @@ def harmonics(
     fit = fit_sine(arr, fs_hz=fs, freq_hz=freq_hz)
     f1 = fit.freq_hz
     n_rec = arr.size
-    min_sep = 1.0 / n_rec  # cycles/sample: one DFT bin
-    freqs: list[float] = []
-    shown_hz: list[float] = []
-    index: list[int] = []
-    for k in range(1, int(n) + 1):
-        fa = _aliased_hz(k * f1, fs) / fs
-        shown_hz.append(fa * fs)
-        if k > 1 and (
-            fa < min_sep or 0.5 - fa < min_sep or any(abs(fa - g) < min_sep for g in freqs)
-        ):
-            continue
-        freqs.append(fa)
-        index.append(k)
+    if freq_hz is None:
+        # the four-parameter fit ignores the harmonics, which pull its frequency; refit the
+        # fundamental with all harmonics sharing it
+        f1 = _refine_fundamental(arr, f1 / fs, int(n)) * fs
+    freqs, shown_hz, index, _ = _plan(f1 / fs, int(n), n_rec)
+    shown_hz = [f * fs for f in shown_hz]
     amps, resid, var_factor = _harmonic_lsq(arr, freqs)
     harmonic_v = [math.nan] * int(n)
     for k, a in zip(index, amps, strict=True):

@@ -1,0 +1,127 @@
+"""Harmonics/THD/SINAD (IEEE 1241) against scipy.signal.periodogram and closed forms;
+the oscillation detector on oscillating, silent, distorted and off-band records."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from scipy.signal import periodogram, square
+
+from benchctl.analysis import detect_oscillation, harmonics
+from benchctl.analysis.spectrum import _aliased_hz
+
+FS_HZ = 1.0e6
+
+
+def distorted(n, *, f_hz, amps_v, phases_rad=None, fs_hz=FS_HZ):
+    t = np.arange(n) / fs_hz
+    phases_rad = phases_rad or [0.1 * k for k in range(len(amps_v))]
+    return sum(a * np.cos(2 * np.pi * (k + 1) * f_hz * t + p)
+               for k, (a, p) in enumerate(zip(amps_v, phases_rad, strict=True)))
+
+
+def test_coherent_harmonics_match_scipy_periodogram():
+    # reference: scipy.signal.periodogram, rectangular window, 'spectrum' scaling: a tone
+    # on a bin of a one-sided spectrum holds A^2 / 2 (a sine's power)
+    n, cycles = 4096, 64
+    f_hz = cycles * FS_HZ / n
+    amps = [1.0, 0.03, 0.01, 0.004]
+    y = distorted(n, f_hz=f_hz, amps_v=amps)
+    ana = harmonics(y, fs_hz=FS_HZ, n=4)
+    _, pxx = periodogram(y, fs=FS_HZ, window="boxcar", scaling="spectrum", detrend=False)
+    ref = [math.sqrt(2 * pxx[cycles * (k + 1)]) for k in range(4)]
+    np.testing.assert_allclose(ana.harmonic_v, ref, rtol=1e-7)
+    # IEEE 1241 THD = sqrt(sum of harmonic powers) / fundamental
+    thd_ref = math.sqrt(sum(a * a for a in ref[1:])) / ref[0]
+    assert ana.thd_ratio == pytest.approx(thd_ref, rel=1e-7)
+    assert ana.thd_db == pytest.approx(20 * math.log10(thd_ref), abs=1e-6)
+
+
+@pytest.mark.parametrize("cycles", [13.37, 101.9])
+def test_thd_of_non_coherent_record_by_least_squares(cycles):
+    # closed form: THD = sqrt(0.1^2 + 0.05^2) / 1 with fractional cycle counts (no window)
+    rng = np.random.default_rng(1)
+    n = 3000
+    f_hz = cycles * FS_HZ / n
+    y = distorted(n, f_hz=f_hz, amps_v=[1.0, 0.1, 0.05]) + rng.normal(0, 1e-4, n)
+    ana = harmonics(y, fs_hz=FS_HZ, n=6)
+    assert ana.thd_ratio == pytest.approx(math.sqrt(0.1**2 + 0.05**2), rel=1e-3)
+    assert ana.harmonic_v[3] < 1e-4 and ana.harmonic_v[5] < 1e-4
+    assert abs(ana.thd_ratio - math.hypot(0.1, 0.05)) < 5 * ana.u_thd_ratio + 1e-5
+    # SINAD counts the distortion, SNR does not (IEEE 1241 9.2, 9.3)
+    assert ana.sinad_db == pytest.approx(-20 * math.log10(math.hypot(0.1, 0.05)), abs=0.05)
+    assert ana.snr_db == pytest.approx(20 * math.log10((1 / math.sqrt(2)) / 1e-4), abs=0.5)
+
+
+def test_harmonics_above_nyquist_are_fitted_at_their_alias():
+    # IEEE 1241: harmonics beyond fs/2 appear at |k f - m fs|; 2 x 0.3 fs -> 0.4 fs
+    f_hz = 0.3 * FS_HZ + 17.0
+    assert _aliased_hz(2 * f_hz, FS_HZ) == pytest.approx(0.4 * FS_HZ - 34.0)
+    n = 4000
+    t = np.arange(n) / FS_HZ
+    y = np.cos(2 * np.pi * f_hz * t) + 0.02 * np.cos(2 * np.pi * 2 * f_hz * t + 0.5)
+    ana = harmonics(y, fs_hz=FS_HZ, n=3)
+    assert ana.harmonic_hz[1] == pytest.approx(0.4 * FS_HZ - 34.0, rel=1e-9)
+    assert ana.harmonic_v[1] == pytest.approx(0.02, rel=1e-6)
+
+
+def test_ideal_8_bit_quantiser_gives_six_db_per_bit():
+    # ideal N-bit quantiser, full-scale sine: SINAD = 6.02 N + 1.76 dB (W. R. Bennett,
+    # Bell Syst. Tech. J. 27, 1948; IEEE 1241 ENOB definition), so ENOB = 8 for 8 bits
+    n, bits = 20_000, 8
+    fsr_v = 2.0
+    q = fsr_v / 2**bits
+    t = np.arange(n) / FS_HZ
+    y = 0.999 * np.cos(2 * np.pi * 1234.567 * t)
+    yq = np.clip(np.floor(y / q) + 0.5, -(2 ** (bits - 1)) + 0.5, 2 ** (bits - 1) - 0.5) * q
+    ana = harmonics(yq, fs_hz=FS_HZ, n=10, full_scale_v=fsr_v)
+    assert ana.sinad_db == pytest.approx(6.02 * bits + 1.76, abs=0.3)
+    assert ana.enob == pytest.approx(bits, abs=0.05)
+    assert ana.nad_rms_v == pytest.approx(q / math.sqrt(12), rel=0.03)
+
+
+def test_detector_sees_a_sine_in_band():
+    rng = np.random.default_rng(3)
+    n = 2048
+    y = distorted(n, f_hz=12_345.0, amps_v=[0.2]) + rng.normal(0, 0.01, n)
+    det = detect_oscillation(y, fs_hz=FS_HZ, band_hz=(10e3, 15e3))
+    assert det.oscillating and det.in_band
+    assert det.freq_hz == pytest.approx(12_345.0, rel=1e-3)
+    assert det.vpp_v == pytest.approx(0.4, rel=0.02)
+    # SNR of a sine in white noise: (A^2/2) / sigma^2 -> 23 dB (closed form)
+    assert det.snr_db == pytest.approx(10 * math.log10(0.02 / 1e-4), abs=0.5)
+    assert "oscillating at" in det.reason
+
+
+def test_detector_rejects_noise_alone_with_its_evidence():
+    # white noise: the largest of N/2 periodogram bins is about ln(N/2)/ln 2 x the median
+    # (exponential distribution of bins; Kay 1993, ch. 7): well under the 20 dB default
+    rng = np.random.default_rng(4)
+    for _ in range(10):  # bounded: 10 records
+        det = detect_oscillation(rng.normal(0, 0.01, 2048), fs_hz=FS_HZ)
+        assert not det.oscillating
+        assert det.prominence_db < 16.0
+        assert det.snr_db < 0.0
+        assert det.reason.startswith("not oscillating")
+
+
+def test_detector_accepts_a_distorted_oscillation_and_flags_off_band():
+    # a square wave (a hard-limited oscillator): fundamental 4/pi of the level, the
+    # harmonics are removed from the noise for the SNR, so it is still detected
+    n = 4000
+    t = np.arange(n) / FS_HZ
+    y = 0.5 * square(2 * np.pi * 5_017.0 * t)
+    det = detect_oscillation(y + np.random.default_rng(5).normal(0, 0.005, n), fs_hz=FS_HZ)
+    assert det.oscillating
+    assert det.vpp_v == pytest.approx(2 * 0.5 * 4 / math.pi, rel=0.02)
+    off = detect_oscillation(y, fs_hz=FS_HZ, band_hz=(20e3, 30e3))
+    assert not off.oscillating and not off.in_band and "outside band" in off.reason
+
+
+def test_detector_on_a_flat_record():
+    det = detect_oscillation(np.zeros(256), fs_hz=FS_HZ)
+    assert not det.oscillating and "flat" in det.reason
+    with pytest.raises(ValueError, match="band_hz"):
+        detect_oscillation(np.zeros(256), fs_hz=FS_HZ, band_hz=(5.0, 1.0))
