@@ -15,11 +15,11 @@ _EXPORTS = {
     "CurveDelta": "benchctl.report.compare",
     "ParameterDelta": "benchctl.report.compare",
     "compare_runs": "benchctl.report.compare",
-    "Datasheet": "benchctl.report.datasheet",
-    "DatasheetGroup": "benchctl.report.datasheet",
-    "DatasheetRow": "benchctl.report.datasheet",
-    "datasheet": "benchctl.report.datasheet",
-    "howe_factor": "benchctl.report.datasheet",
+    "Datasheet": "benchctl.report.datasheets",
+    "DatasheetGroup": "benchctl.report.datasheets",
+    "DatasheetRow": "benchctl.report.datasheets",
+    "datasheet": "benchctl.report.datasheets",
+    "howe_factor": "benchctl.report.datasheets",
 }
 
 __all__ = sorted(_EXPORTS)
