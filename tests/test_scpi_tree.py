@@ -325,8 +325,6 @@ WORDS = ["VOLT", "SOUR2", ":", ";", ",", "?", " ", "*IDN", "*RST", "MEAS", "OUTP
          "TRAC", "#", "#0", "#15", "#9", "'", '"', "MAX", "1.5E3", "mV", "SYST:ERR?", "(",
          ")", "\n", "1", "ON"]
 
-
-
 messages = st.one_of(
     st.text(alphabet=ALPHABET, max_size=60),
     st.lists(st.sampled_from(WORDS), max_size=25).map("".join),
