@@ -271,6 +271,16 @@ class Scope(Instrument):
         if not self.strict:
             self.check_errors()
 
+    def arm(self) -> None:
+        """Arm one acquisition without waiting (pair with :meth:`wait_complete`)."""
+        self.command("arm")
+
+    def wait_complete(self, *, timeout_s: float) -> None:
+        """Wait (``*OPC?``) until the armed acquisition is complete, at most ``timeout_s``."""
+        self.sync(timeout_s=timeout_s)
+        if not self.strict:
+            self.check_errors()
+
     def scaling(self, channel: int) -> dict[str, float]:
         """Return the last record's scaling: points, dt_s, t0_s, dy_v, y0_v."""
         return dict(self.ask("scaling", channel=channel))
@@ -284,6 +294,12 @@ class Scope(Instrument):
             The block is malformed or its length disagrees with the record's scaling.
         """
         mode = transfer or self.transfer
+        # the format goes first: the scaling reply describes the codes of that format
+        if mode == "ascii":
+            self.require("fetch_ascii")
+            self._set_format("format_ascii")
+        else:
+            self._set_format("format_int16" if mode == "int16" else "format_int8")
         scale = self.scaling(channel)
         points = int(scale["points"])
         dt_s = float(scale["dt_s"])
@@ -291,22 +307,22 @@ class Scope(Instrument):
             raise ProtocolError(f"{self.resource}: scaling reply makes no sense: {scale}")
         clipped: int | None = None
         if mode == "ascii":
-            self.require("fetch_ascii")
-            self._set_format("format_ascii")
             volts = np.asarray(self.ask("fetch_ascii", channel=channel), dtype=float)
             if volts.size != points:
                 raise ProtocolError(f"{self.resource}: ASCII record has {volts.size} values, scaling says {points}")
         else:
-            self._set_format("format_int16" if mode == "int16" else "format_int8")
             width = 2 if mode == "int16" else 1
             text = self.dialect.op("fetch_block").render(channel=channel)
             payload = self.transport.read_block(text, expected_bytes=points * width)
             if mode == "int16":
                 codes = np.frombuffer(payload, dtype=">i2" if self.dialect.int16_big_endian else "<i2")
-                codes8 = codes // 256  # INTeger,16 carries the 8-bit code times 256
+                codes8 = codes >> 8  # INTeger,16 carries the 8-bit code times 256
             else:
-                codes8 = np.frombuffer(payload, dtype="i1")
-            volts = codes8.astype(np.float64) * scale["dy_v"] + scale["y0_v"]
+                codes = codes8 = np.frombuffer(payload, dtype="i1")
+            # volts = code * dy + y0, the code as transferred (wire contract, DEVELOPERS.md)
+            volts = codes.astype(np.float64)
+            volts *= scale["dy_v"]
+            volts += scale["y0_v"]
             clipped = int(np.count_nonzero((codes8 <= _ADC8_MIN) | (codes8 >= _ADC8_MAX)))
         if self.dialect.has("clipped"):
             clipped = int(self.ask("clipped", channel=channel))

@@ -248,6 +248,8 @@ def build_alt_tree() -> CommandTree:
         ch = int(c.numeric(0, minimum=1, maximum=2))
         dy, y0 = st(c).scaling(ch)
         s = st(c)
+        if s.mode == "WORD":  # 16-bit words carry the 8-bit code times 256
+            dy /= 256.0
         return ",".join(format_nr3(v, digits=12) for v in (y0, dy, s.npts, 0.0, s.window_s / s.npts))
 
     tree.add("WAV:DATA", query=wav_data)
