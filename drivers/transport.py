@@ -56,6 +56,9 @@ logger = logging.getLogger(__name__)
 TEXT_CHUNK_BYTES = 64 * 1024
 #: Receive chunk while reading the payload of a binary block (termination off).
 BLOCK_CHUNK_BYTES = 1024 * 1024
+#: Quiet time that ends a drain before a retry, and before the first exchange after a timeout, s.
+RETRY_QUIET_S = 0.1
+RESYNC_QUIET_S = 0.02
 
 _RESOURCE_RE = re.compile(
     r"^(?:"
@@ -137,6 +140,7 @@ class Transport:
         if self._session is not None and hasattr(self._session, "max_recv_size"):
             self._session.max_recv_size = TEXT_CHUNK_BYTES
         self._closed = False
+        self._dirty = False  # a reply may be late: drain before the next exchange
 
     # ------------------------------------------------------------------ properties
     @property
@@ -159,6 +163,8 @@ class Transport:
     # ------------------------------------------------------------------ exchanges
     def write(self, message: str) -> None:
         """Send one program message (the write termination is appended)."""
+        if self._dirty:
+            self._resync()
         t0 = time.perf_counter()
         try:
             self._res.write(message)
@@ -185,6 +191,8 @@ class Transport:
         """
         attempt = 0
         while True:
+            if self._dirty:
+                self._resync()
             t0 = time.perf_counter()
             try:
                 reply = self._res.query(message)
@@ -194,7 +202,7 @@ class Transport:
                     attempt += 1
                     self.stats.retries += 1
                     logger.info("%s: retry %d of %r after timeout", self.resource, attempt, message)
-                    self.drain()
+                    self.drain(quiet_s=RETRY_QUIET_S)
                     continue
                 raise err from exc
             self.stats.queries += 1
@@ -240,6 +248,7 @@ class Transport:
         head = self._read_exact(2, message)
         if head[:1] != b"#" or not head[1:2].isdigit():
             rest = b"" if head.endswith(b"\n") else self._read_line_quietly()
+            self.drain()
             raise ProtocolError(f"{self.resource}: reply to {message!r} is not a block", head + rest)
         ndigits = int(head[1:2])
         if ndigits == 0:
@@ -304,6 +313,11 @@ class Transport:
                     break
         except OSError:
             pass
+
+    def _resync(self) -> None:
+        """After a timeout a late reply may still come: drop whatever arrived meanwhile."""
+        self._dirty = False
+        self.drain(quiet_s=RESYNC_QUIET_S)
 
     def close(self) -> None:
         """Close the session; safe to call twice."""
@@ -385,6 +399,7 @@ class Transport:
             if exc.error_code == constants.StatusCode.error_timeout:
                 if self._peer_closed():
                     return ConnectionLost("connection closed by the instrument", message, self.resource)
+                self._dirty = True
                 return InstrumentTimeout("no reply", message, self.resource, self._timeout_s)
             if exc.error_code in (
                 constants.StatusCode.error_connection_lost,

@@ -245,3 +245,19 @@ def test_every_exchange_is_logged_with_its_duration(caplog: pytest.LogCaptureFix
 )
 def test_resource_shapes(resource: str, ok: bool) -> None:
     assert resource_shape_ok(resource) is ok
+
+
+def test_late_reply_after_a_timeout_does_not_answer_the_next_query() -> None:
+    # The first reply comes 0.4 s late (after the 0.2 s timeout); the next query must get
+    # its own answer, not the stale one.
+    def script(line: bytes, i: int) -> bytes | None:
+        if i == 0:
+            time.sleep(0.4)
+            return b"STALE\n"
+        return b"FRESH %d\n" % i
+
+    with ScriptServer(script) as server, open_resource(server.resource, timeout_s=0.2) as tr:
+        with pytest.raises(InstrumentTimeout):
+            tr.query("MEASure:VOLTage?")
+        time.sleep(0.4)  # the stale reply arrives meanwhile
+        assert tr.query("MEASure:CURRent?") == "FRESH 1"
