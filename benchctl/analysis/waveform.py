@@ -326,8 +326,8 @@ def fit_sine(y: ArrayLike, *, fs_hz: float, freq_hz: float | None = None) -> Sin
     Time is taken about the record centre, which decorrelates phase from frequency and
     keeps the normal equations well conditioned. In white Gaussian noise of standard
     deviation sigma the uncertainties approach the Cramer-Rao bound [2]_ [3]_:
-    var(Vpp) = 8 sigma^2 / N and var(f) = 12 sigma^2 fs^2 / ((2 pi)^2 A^2/2 N (N^2 - 1)) /
-    ... (see Kay, eq. 3.41). A record should hold at least about two cycles.
+    var(Vpp) >= 8 sigma^2 / N and var(f) >= 12 fs^2 / ((2 pi)^2 eta N (N^2 - 1)) with
+    eta = A^2 / (2 sigma^2) (Kay, eq. 3.41). A record should hold at least about two cycles.
 
     References
     ----------
