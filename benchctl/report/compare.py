@@ -11,7 +11,7 @@ import numpy as np
 from rich.markup import escape as esc
 from rich.table import Table
 
-from benchctl.report.formatting import fmt, md_table
+from benchctl.report.formatting import DASH, fmt, md_table
 from benchctl.report.runview import X_CANDIDATES, RunView, StepData, finite, load_run
 
 Verdict = Literal["same", "shifted", "missing"]
@@ -88,22 +88,29 @@ class Comparison:
     def tables(self) -> list[Table]:
         """rich tables: parameters, then curves."""
         t = Table(title=esc(f"A = {self.label_a}   B = {self.label_b}"))
-        for col in ("Parameter", "Unit", "A", "u(A)", "B", "u(B)", "B - A", "Limit", "Verdict"):
-            t.add_column(col, justify="right" if col not in ("Parameter", "Unit", "Verdict") else "left")
+        for col in ("Parameter (unit)", "A", "u(A)", "B", "u(B)", "B - A", "Limit", "Verdict"):
+            t.add_column(col, justify="right" if col not in ("Parameter (unit)", "Verdict") else "left",
+                         no_wrap=True, min_width=7 if col == "Verdict" else None)
         for p in self.parameters:
             style = {"shifted": "bold red", "missing": "yellow"}.get(p.verdict, "green")
-            t.add_row(esc(p.name), esc(p.unit), fmt(p.value_a), fmt(p.uncertainty_a), fmt(p.value_b),
-                      fmt(p.uncertainty_b), fmt(p.difference), fmt(p.threshold),
+            label = f"{p.name} ({p.unit})" if p.unit else p.name
+            t.add_row(esc(label), fmt(p.value_a), fmt(p.uncertainty_a), fmt(p.value_b),
+                      fmt(p.uncertainty_b), fmt(p.difference), fmt(p.threshold, 4),
                       f"[{style}]{p.verdict}[/{style}]")
-        c = Table(title="Amplitude vs rail, B - A over the common rail range")
-        for col in ("Step", "Curve", "Rail from (V)", "to (V)", "Points", "Max |B - A| (V)",
-                    "RMS (V)", "at rail (V)", "Note"):
-            c.add_column(col)
+        notes = [f"{p.name}: {p.note}" for p in self.parameters if p.note]
+        if notes:
+            t.caption, t.caption_justify = esc("; ".join(notes)), "left"
+        c = Table(title="Amplitude vs rail: B - A where both runs have the rail")
+        for col in ("Step", "Curve", "Rail (V)", "Points", "Max |B-A| (V)", "RMS (V)", "Max at (V)"):
+            c.add_column(col, no_wrap=True, justify="left" if col in ("Step", "Curve") else "right")
         for cd in self.curves:
-            c.add_row(esc(cd.step), esc(cd.column), fmt(cd.overlap_lo_v), fmt(cd.overlap_hi_v),
-                      str(cd.n_points), fmt(cd.max_abs_diff), fmt(cd.rms_diff), fmt(cd.rail_at_max_v),
-                      esc(cd.note))
-        return [t, c]
+            span = f"{fmt(cd.overlap_lo_v)} to {fmt(cd.overlap_hi_v)}" if cd.overlap_lo_v is not None else DASH
+            c.add_row(esc(cd.step), esc(cd.column), span, str(cd.n_points), fmt(cd.max_abs_diff),
+                      fmt(cd.rms_diff), fmt(cd.rail_at_max_v))
+        curve_notes = [f"{cd.step} {cd.column}: {cd.note}" for cd in self.curves if cd.note]
+        if curve_notes:
+            c.caption, c.caption_justify = esc("; ".join(curve_notes)), "left"
+        return [t, c] if self.curves else [t]
 
     def to_markdown(self) -> str:
         """The comparison as a Markdown document."""

@@ -94,7 +94,7 @@ class Datasheet:
             out += [_guard_text(self), ""]
         for g in self.groups:
             out += [f"## {g.board} rev {g.revision or '?'}", "",
-                    f"{len(g.units)} units: {', '.join(g.units)}", ""]
+                    f"{len(g.units)} unit{'s' if len(g.units) != 1 else ''}: {', '.join(g.units)}", ""]
             header = ["Parameter", "Unit", "Min", "Typ", "Max", "n"]
             if self.coverage is not None:
                 header += ["Guard low", "Guard high"]
@@ -111,21 +111,32 @@ class Datasheet:
         return "\n".join(out)
 
     def tables(self) -> list[Table]:
-        """rich tables, one per board revision."""
+        """rich tables, one per board revision (spec columns only when a spec exists)."""
         tables = []
         for g in self.groups:
-            t = Table(title=esc(f"{g.board} rev {g.revision or '?'}: {len(g.units)} units (Typ = median)"))
+            n = len(g.units)
+            title = f"{g.board} rev {g.revision or '?'}: {n} unit{'s' if n != 1 else ''} (Typ = median)"
+            t = Table(title=esc(title))
+            has_spec = any(r.spec_min is not None or r.spec_max is not None for r in g.rows)
             cols = ["Parameter", "Unit", "Min", "Typ", "Max", "n"]
             if self.coverage is not None:
                 cols += ["Guard low", "Guard high"]
-            cols += ["Spec min", "Spec max", "Note"]
+            if has_spec:
+                cols += ["Spec min", "Spec max"]
             for c in cols:
-                t.add_column(c, justify="left" if c in ("Parameter", "Unit", "Note") else "right")
+                t.add_column(c, justify="left" if c in ("Parameter", "Unit") else "right", no_wrap=True)
             for r in g.rows:
-                cells = [esc(r.parameter), esc(r.unit), fmt(r.minimum), fmt(r.typical), fmt(r.maximum), str(r.n_units)]
+                cells = [esc(r.parameter), esc(r.unit), fmt(r.minimum), fmt(r.typical), fmt(r.maximum),
+                         str(r.n_units)]
                 if self.coverage is not None:
                     cells += [fmt(r.guard_low), fmt(r.guard_high)]
-                t.add_row(*cells, fmt(r.spec_min), fmt(r.spec_max), esc(r.note))
+                if has_spec:
+                    cells += [fmt(r.spec_min), fmt(r.spec_max)]
+                t.add_row(*cells)
+            notes = [f"{r.parameter}: {r.note}" for r in g.rows if r.note]
+            if notes:
+                t.caption = esc("; ".join(notes))
+                t.caption_justify = "left"
             tables.append(t)
         return tables
 
