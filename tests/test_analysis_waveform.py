@@ -260,3 +260,24 @@ def test_frequency_estimate_carries_uncertainty():
     est = frequency(y + rng.normal(0, 0.01, y.size), fs_hz=FS_HZ)
     assert est.unit == "Hz" and est.u > 0
     assert abs(est.value - f_hz) < 5 * est.u
+
+
+def test_fit_refuses_a_tone_at_nyquist_instead_of_returning_garbage():
+    # a tone within 0.1 bin of fs/2 cannot be told from its alias: clear refusal
+    n = 1000
+    y = np.cos(2 * np.pi * (0.5 - 0.1 / n) * np.arange(n) + 0.4)
+    with pytest.raises(MeasurementError, match="Nyquist"):
+        fit_sine(y, fs_hz=1.0)
+
+
+@pytest.mark.parametrize("cycles", [0.6, 1.2, 2.7])
+def test_fit_of_short_records_stays_statistically_honest(cycles):
+    # few cycles: errors stay within 4 reported standard uncertainties (30 seeded records)
+    n = 64
+    rng = np.random.default_rng(int(cycles * 10))
+    for _ in range(30):
+        y, f_hz = tone(n, cycles=cycles, phase_rad=rng.uniform(-3, 3), offset_v=0.5,
+                       fs_hz=1.0)
+        fit = fit_sine(y + rng.normal(0, 0.01, n), fs_hz=1.0)
+        assert abs(fit.vpp_v - 2.0) < 4 * fit.u_vpp_v + 1e-12
+        assert abs(fit.freq_hz - f_hz) < 4 * fit.u_freq_hz + 1e-12

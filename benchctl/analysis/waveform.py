@@ -214,7 +214,12 @@ def _solve3(
     """Three-parameter least squares y ~ a cos + b sin + c; returns (params, normal matrix)."""
     h = _normal3(w_rad, y.size)
     g = np.array([co @ y, si @ y, y.sum()])
-    return np.linalg.solve(h, g), h
+    try:
+        return np.linalg.solve(h, g), h
+    except np.linalg.LinAlgError as exc:
+        raise MeasurementError(
+            f"sine fit is singular at {w_rad / (2 * math.pi):.6g} cycles/sample"
+        ) from exc
 
 
 def _sine_fit_kernel(
@@ -238,7 +243,10 @@ def _sine_fit_kernel(
     iterations : int
     """
     n = y.size
-    w = float(w0_rad)
+    # keep w a quarter bin away from DC and Nyquist, where cos or sin vanishes
+    w_lo = 0.5 * math.pi / n
+    w_hi = math.pi - 0.5 * math.pi / n
+    w = min(max(float(w0_rad), w_lo), w_hi) if fit_freq else float(w0_rad)
     co, si = _cos_sin(w, n)
     p3, h3 = _solve3(y, co, si, w)
     r = y - (p3[0] * co + p3[1] * si + p3[2])
@@ -275,7 +283,7 @@ def _sine_fit_kernel(
         iterations += 1
         accepted = False
         for _ in range(12):
-            w_new = w + dw
+            w_new = min(max(w + dw, w_lo), w_hi)
             co_new, si_new = _cos_sin(w_new, n)
             p_new, h3_new = _solve3(y, co_new, si_new, w_new)
             r_new = y - (p_new[0] * co_new + p_new[1] * si_new + p_new[2])
@@ -286,7 +294,16 @@ def _sine_fit_kernel(
             dw *= 0.5
         if not accepted:
             break
+        stuck = w_new == w  # pinned at a bound
         w, co, si, p3, h3, r, sse = w_new, co_new, si_new, p_new, h3_new, r_new, sse_new
+        if stuck:
+            break
+    if w in (w_lo, w_hi):
+        where = "DC" if w == w_lo else "Nyquist"
+        raise MeasurementError(
+            f"sine fit frequency ran to within a quarter bin of {where}: the record cannot "
+            "separate the tone from its alias (fewer than one cycle, or f too close to fs/2)"
+        )
     return np.append(p3, w), np.linalg.pinv(h), sse, iterations
 
 
