@@ -96,7 +96,10 @@ def test_min_typ_max_against_numpy(tmp_path):
     assert (drop.minimum, drop.typical, drop.maximum) == (
         float(np.min(dropout_b)), float(np.median(dropout_b)), float(np.max(dropout_b)))
     assert drop.n_units == 5 and drop.unit == "V" and drop.spec_max == 3.0
-    assert drop.k == pytest.approx(exact_two_sided_k(5, 0.90, 0.95), rel=0.01)
+    assert drop.k == pytest.approx(exact_two_sided_k(5, 0.90, 0.95), rel=1e-6)  # exact by default
+    howe = datasheet(runs, coverage=0.90, confidence=0.95, factor="howe")
+    k_howe = next(r.k for r in howe.groups[0].rows if r.parameter == "dropout_v")
+    assert k_howe == pytest.approx(drop.k, rel=0.01) and k_howe != drop.k
     assert drop.guard_low == pytest.approx(np.mean(dropout_b) - drop.k * np.std(dropout_b, ddof=1), rel=1e-12)
     assert drop.guard_high == pytest.approx(np.mean(dropout_b) + drop.k * np.std(dropout_b, ddof=1), rel=1e-12)
     s_row = rows_b["sensitivity_vpp_per_v"]

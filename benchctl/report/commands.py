@@ -55,6 +55,8 @@ def add_command(subparsers) -> None:
                    help="add guard-banded limits covering this fraction of units (e.g. 0.99)")
     p.add_argument("--confidence", type=float, default=0.95, metavar="G",
                    help="confidence of the guard-banded limits (default 0.95)")
+    p.add_argument("--factor", choices=("exact", "howe"), default="exact",
+                   help="tolerance factor: exact (default) or Howe's approximation")
     p.add_argument("--include-incomplete", action="store_true",
                    help="also use runs that were aborted or failed")
     p.set_defaults(func=_cmd_datasheet)
@@ -104,7 +106,7 @@ def _cmd_datasheet(args: argparse.Namespace, console: Console) -> int:
 
     try:
         sheet = datasheet(args.run_dirs, coverage=args.coverage, confidence=args.confidence,
-                          include_incomplete=args.include_incomplete)
+                          include_incomplete=args.include_incomplete, factor=args.factor)
         written = sheet.write(args.out) if args.out else ()
     except (BenchError, OSError, ValueError) as exc:
         return _bad(console, "datasheet", exc)

@@ -8,7 +8,7 @@ import math
 from collections.abc import Iterable
 from dataclasses import asdict, dataclass
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 from rich.markup import escape as esc
@@ -162,6 +162,7 @@ def datasheet(
     coverage: float | None = None,
     confidence: float = 0.95,
     include_incomplete: bool = False,
+    factor: Literal["exact", "howe"] = "exact",
 ) -> Datasheet:
     """Build datasheet tables from runs of several units, grouped by board and revision.
 
@@ -179,6 +180,8 @@ def datasheet(
         Confidence level of the tolerance interval, 0.95 by default.
     include_incomplete : bool
         Use runs whose status is not ``complete`` (aborted, failed) too. Off by default.
+    factor : {"exact", "howe"}
+        How k is computed: the exact two-sided factor (default) or Howe's approximation.
 
     Returns
     -------
@@ -195,9 +198,9 @@ def datasheet(
 
     Notes
     -----
-    k comes from ``benchctl.analysis.tolerance_factor`` when that exists, otherwise from
-    Howe's approximation [1]_ (see :func:`howe_factor`); :attr:`Datasheet.factor_source`
-    says which.
+    k comes from ``benchctl.analysis.tolerance_factor`` (exact, or Howe's approximation
+    [1]_ with ``factor="howe"``); without that module, from :func:`howe_factor`.
+    :attr:`Datasheet.factor_source` says which. Typ is always the median.
 
     References
     ----------
@@ -208,6 +211,8 @@ def datasheet(
         raise ValueError(f"{coverage=} must be in (0, 1)")
     if not 0 < confidence < 1:
         raise ValueError(f"{confidence=} must be in (0, 1)")
+    if factor not in ("exact", "howe"):
+        raise ValueError(f"{factor=} must be 'exact' or 'howe'")
     runs = [load_run(p) for p in run_dirs]
     skipped: list[str] = []
     usable = []
@@ -232,14 +237,14 @@ def datasheet(
             chosen[key] = run
         else:
             skipped.append(f"{run.path}: older run of unit {unit}, replaced by {other.path}")
-    factor, source = _factor_function()
+    k_of, source = _factor_function(factor)
     groups: dict[tuple[str, str], list[tuple[str, RunView]]] = {}
     for (board, revision, unit), run in sorted(chosen.items()):
         groups.setdefault((board, revision), []).append((unit, run))
     built = []
     for (board, revision), members in groups.items():
         names = list(dict.fromkeys(n for _, run in members for n in run.parameters))
-        rows = tuple(_row(name, members, coverage, confidence, factor) for name in names)
+        rows = tuple(_row(name, members, coverage, confidence, k_of) for name in names)
         built.append(DatasheetGroup(board, revision, tuple(u for u, _ in members),
                                     tuple(str(r.path) for _, r in members), rows))
     return Datasheet(tuple(built), coverage, confidence, source, tuple(skipped))
@@ -272,17 +277,29 @@ def howe_factor(n: int, *, coverage: float, confidence: float) -> float:
     return float(math.sqrt(nu * (1 + 1 / n) * z * z / chi2))
 
 
-def _factor_function():
+def _factor_function(method: str):
+    """Return ``(k(n, coverage=, confidence=), description)``."""
     try:
-        from benchctl.analysis import tolerance_factor  # written by the analysis layer
+        from benchctl.analysis import tolerance_factor  # the analysis layer's estimator
     except ImportError:
         return howe_factor, "Howe (1969) approximation, benchctl.report.datasheets.howe_factor"
-    return tolerance_factor, "benchctl.analysis.tolerance_factor"
+
+    def k(n: int, *, coverage: float, confidence: float) -> float:
+        return tolerance_factor(n, coverage=coverage, confidence=confidence, sided="two", method=method)
+
+    words = "exact (Odeh-Owen integral)" if method == "exact" else "Howe (1969) approximation"
+    return k, f"two-sided normal tolerance factor, {words}, benchctl.analysis.tolerance_factor"
 
 
 def _min_typ_max(values: list[float]) -> tuple[float, float, float]:
-    arr = np.asarray(values, dtype=float)
-    return float(arr.min()), float(np.median(arr)), float(arr.max())
+    """Min, median, max; from ``benchctl.analysis.min_typ_max`` when that exists."""
+    try:
+        from benchctl.analysis import min_typ_max
+    except ImportError:
+        arr = np.asarray(values, dtype=float)
+        return float(arr.min()), float(np.median(arr)), float(arr.max())
+    r = min_typ_max(values, typ="median")
+    return float(r.min_value), float(r.typ_value), float(r.max_value)
 
 
 def _row(name: str, members: list[tuple[str, RunView]], coverage: float | None, confidence: float,
