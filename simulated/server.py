@@ -292,7 +292,7 @@ class InstrumentServer:
         self._clients: set[socket.socket] = set()
         self._threads: list[threading.Thread] = []
         self.sock = socket.create_server((host, port), reuse_port=False)
-        self.sock.settimeout(0.1)
+        self.sock.settimeout(0.5)
         self.host, self.port = self.sock.getsockname()[:2]
         self._accept_thread = threading.Thread(target=self._accept_loop, daemon=True,
                                                name=f"sim-{instrument.role}-accept")
@@ -311,10 +311,7 @@ class InstrumentServer:
         self._stop.set()
         with self.instrument.bench.cond:
             self.instrument.bench.cond.notify_all()
-        try:
-            self.sock.close()
-        except OSError:
-            pass
+        _shutdown(self.sock)  # wakes the blocked accept() at once
         for c in list(self._clients):
             _shutdown(c)
         if self._accept_thread.is_alive():
