@@ -48,7 +48,15 @@ def test_byte_orders() -> None:
     a = np.array([0x0102], dtype=np.int16)
     assert encode_block(a, big_endian=True)[3:] == b"\x01\x02"
     assert encode_block(a, big_endian=False)[3:] == b"\x02\x01"
-    assert encode_block(a, dtype="int8") == b"#11\x02"  # value-converted, 0x0102 -> int8 2
+    assert encode_block(np.array([2, -3]), dtype="int8") == b"#12\x02\xfd"  # values kept
+    # Values that int8 cannot hold are refused, never wrapped (0x0102 would become 2).
+    with pytest.raises(ValueError, match="outside"):
+        encode_block(a, dtype="int8")
+    with pytest.raises(ValueError, match="non-integral"):
+        encode_block(np.array([0.5]), dtype="int16")
+    with pytest.raises(ValueError, match="non-finite"):
+        encode_block(np.array([np.nan]), dtype="int16")
+    assert encode_block(np.array([0.1]), dtype="float32") == b"#14" + np.float32(0.1).tobytes()[::-1]
 
 
 def test_decode_is_zero_copy() -> None:

@@ -343,3 +343,26 @@ def test_response_string_and_error() -> None:
 def test_string_round_trips(text: str) -> None:
     assert parse_response_string(format_string(text)) == text
     assert parse_string(format_string(text)) == text
+
+
+# IEEE 488.2-1992 §7.7.3.2 table 7-1 multipliers (from memory), written out here
+# independently of the implementation's table.
+PREFIXES = {"EX": 1e18, "PE": 1e15, "T": 1e12, "G": 1e9, "MA": 1e6, "K": 1e3, "M": 1e-3,
+            "U": 1e-6, "N": 1e-9, "P": 1e-12, "F": 1e-15, "A": 1e-18, "": 1.0}
+
+
+@settings(max_examples=300, deadline=None)
+@given(
+    st.floats(min_value=-1e6, max_value=1e6, allow_nan=False),
+    st.sampled_from(sorted(PREFIXES)),
+    st.sampled_from(["V", "A", "S", "HZ", "OHM", "W"]),
+    st.sampled_from(["", " ", "  "]),
+    st.booleans(),
+)
+def test_suffix_multiplier_property(x: float, prefix: str, unit: str, gap: str, lower: bool) -> None:
+    text = format_nr3(x) + gap + (prefix + unit).lower() if lower else format_nr3(x) + gap + prefix + unit
+    mult = PREFIXES[prefix]
+    if (prefix, unit) in (("M", "HZ"), ("M", "OHM")):
+        mult = 1e6  # IEEE 488.2 special cases MHZ, MOHM (from memory)
+    expected = float(format_nr3(x)) * mult
+    assert parse_numeric(text, unit=unit) == pytest.approx(expected, rel=1e-12, abs=1e-300)

@@ -300,6 +300,25 @@ def test_headers_and_declaration_errors() -> None:
         t.add("volt", set=lambda c: None)  # no capitals: no short form
     with pytest.raises(ValueError):
         t.add("VOLTage")  # no handler
+    with pytest.raises(ValueError):
+        t.add("INPut2:COUPling", set=lambda c: None)  # a suffix is marked with '#'
+    with pytest.raises(ValueError):
+        t.add("MEASure:CURRent?", set=lambda c: None)  # query-only spec with a set handler
+
+
+def test_resolution_cache_respects_the_path() -> None:
+    # The same typed header means different commands from the root and under a path
+    # (SCPI-1999 Vol. 1 §6.2.4, from memory); repeated calls must not mix them up.
+    for _ in range(3):
+        out, model, q = run("VOLT 2;:VOLT:PROT 6;LEV 3;:SOUR2:VOLT:PROT 6.5;LEV 4;LEV?")
+        assert len(q) == 0, q
+        assert model.volt == {1: 3.0, 2: 4.0}
+        assert model.log == ["VOLT1", "OVP6.0", "VOLT1", "OVP6.5", "VOLT2"]
+        # "LEV?" after SOUR2:VOLT:LEV resolves to SOUR2:VOLT:LEV?, not a root "LEV".
+        assert parse_response_number(out) == 4.0
+        # After SOUR2:VOLT the path is SOUR2, where there is no LEV.
+        _, _, q = run("SOUR2:VOLT 4;LEV?")
+        assert q.codes() == [-113]
 
 
 def test_handler_bugs_propagate() -> None:

@@ -68,6 +68,21 @@ def block_dtype(dtype: str | np.dtype, *, big_endian: bool = True) -> np.dtype:
     return np.dtype(("<" if not big_endian else ">") + code)
 
 
+def _convert(data: np.ndarray, wire: np.dtype) -> np.ndarray:
+    """Cast to the wire type; refuse integer targets that would change a value."""
+    if wire.kind in "iu" and not np.can_cast(data.dtype, wire, casting="safe"):
+        if data.dtype.kind == "f" and not np.isfinite(data).all():
+            raise ValueError(f"non-finite values cannot be sent as {wire.name}")
+        if data.size:
+            info = np.iinfo(wire)
+            if data.min() < info.min or data.max() > info.max:
+                raise ValueError(f"values outside {info.min}..{info.max} cannot be sent as "
+                                 f"{wire.name}")
+            if data.dtype.kind == "f" and not np.array_equal(data, np.round(data)):
+                raise ValueError(f"non-integral values cannot be sent as {wire.name}")
+    return data.astype(wire, copy=False)
+
+
 def encode_block(
     data: bytes | bytearray | memoryview | np.ndarray,
     *,
@@ -99,8 +114,10 @@ def encode_block(
     Raises
     ------
     ValueError
-        If the payload is longer than 999 999 999 bytes (definite form) or the dtype is
-        not a block element type.
+        If the payload is longer than 999 999 999 bytes (definite form), the dtype is
+        not a block element type, or an integer element type cannot hold a value
+        exactly (out of range, non-integral or non-finite; integers never wrap).
+        Float to float32 conversion rounds as numpy does.
 
     References
     ----------
@@ -109,7 +126,7 @@ def encode_block(
     """
     if isinstance(data, np.ndarray):
         wire = block_dtype(dtype if dtype is not None else data.dtype, big_endian=big_endian)
-        payload = memoryview(np.ascontiguousarray(data.astype(wire, copy=False))).cast("B")
+        payload = memoryview(np.ascontiguousarray(_convert(data, wire))).cast("B")
     else:
         payload = memoryview(data).cast("B")
         if dtype is not None:  # bytes are already on the wire; check they are whole elements

@@ -219,13 +219,23 @@ class ErrorQueue:
             self._entries[-1] = (QUEUE_OVERFLOW, STANDARD_ERRORS[QUEUE_OVERFLOW])
 
     def pop(self) -> tuple[int, str]:
-        """Remove and return the oldest entry as ``(code, text)``; ``(0, "No error")`` if empty."""
+        """Remove and return the oldest entry as ``(code, text)``; ``(0, "No error")`` if empty.
+
+        References
+        ----------
+        SCPI-1999 Vol. 2 §21.8 (from memory): FIFO; an empty queue reads 0,"No error".
+        """
         if self._entries:
             return self._entries.popleft()
         return 0, STANDARD_ERRORS[0]
 
     def peek(self) -> tuple[int, str]:
-        """Return the oldest entry without removing it; ``(0, "No error")`` if empty."""
+        """Return the oldest entry without removing it; ``(0, "No error")`` if empty.
+
+        References
+        ----------
+        SCPI-1999 Vol. 2 §21.8 (from memory).
+        """
         if self._entries:
             return self._entries[0]
         return 0, STANDARD_ERRORS[0]
@@ -247,11 +257,21 @@ class ErrorQueue:
         return f'{code},"{text}"'
 
     def clear(self) -> None:
-        """Remove every entry (what ``*CLS`` does to the queue)."""
+        """Remove every entry (what ``*CLS`` does to the queue).
+
+        References
+        ----------
+        IEEE 488.2-1992 §10.3 ``*CLS`` (from memory).
+        """
         self._entries.clear()
 
     def codes(self) -> list[int]:
-        """Return the queued codes, oldest first, without removing them."""
+        """Return the queued codes, oldest first, without removing them.
+
+        References
+        ----------
+        SCPI-1999 Vol. 2 §21.8.6 SYSTem:ERRor:COUNt? reports ``len`` of this (from memory).
+        """
         return [code for code, _ in self._entries]
 
     def __len__(self) -> int:

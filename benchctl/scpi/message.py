@@ -146,7 +146,7 @@ def split_units(message: str) -> tuple[list[str], ScpiError | None]:
             elif c in "\"'":
                 pos = _skip_string(message, i)
             elif c == "#":
-                if i + 1 < len(message) and message[i + 1].isdigit():
+                if i + 1 < len(message) and "0" <= message[i + 1] <= "9":
                     pos = _skip_block(message, i)
                 else:
                     pos = i + 1
@@ -198,7 +198,7 @@ def split_params(text: str) -> tuple[str, ...]:
         c = text[pos]
         if c in "\"'":
             end = _skip_string(text, pos)
-        elif c == "#" and pos + 1 < n and text[pos + 1].isdigit():
+        elif c == "#" and pos + 1 < n and "0" <= text[pos + 1] <= "9":
             end = _skip_block(text, pos)
         elif c == "(":
             end = _skip_expression(text, pos)

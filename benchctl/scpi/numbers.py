@@ -76,7 +76,8 @@ MAX_SUFFIX_CHARS = 12
 _DECIMAL = re.compile(
     r"([+-]?)(\d*)(?:\.(\d*))?"  # sign, integer part, fraction
     r"(?:[ \t]*[eE][ \t]*([+-]?\d+))?"  # exponent, white space allowed around E
-    r"(?:[ \t]*([A-Za-z][A-Za-z/]*))?"  # suffix unit with optional multiplier
+    r"(?:[ \t]*([A-Za-z][A-Za-z/]*))?",  # suffix unit with optional multiplier
+    re.ASCII,
 )
 _NONDECIMAL = re.compile(r"#([HhQqBb])([0-9A-Za-z]*)")
 _NONDECIMAL_BASES = {"H": 16, "Q": 8, "B": 2}
@@ -93,7 +94,7 @@ def _token_kind(token: str) -> str:
     if c in "\"'":
         return "string"
     if c == "#":
-        if len(token) > 1 and token[1].isdigit():
+        if len(token) > 1 and "0" <= token[1] <= "9":
             return "block"
         return "nondecimal"
     if c == "(":
@@ -434,10 +435,10 @@ def format_string(text: str) -> str:
 # ----------------------------------------------------------------------- response parsing
 
 _RESP_NUM = r"[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?"
-_RESP_NUM_RE = re.compile(r"\s*(" + _RESP_NUM + r")\s*")
+_RESP_NUM_RE = re.compile(r"\s*(" + _RESP_NUM + r")\s*", re.ASCII)
 _RESP_SPECIAL = {"NAN": math.nan, "INF": math.inf, "+INF": math.inf, "-INF": -math.inf,
                  "NINF": -math.inf}
-_RESP_LIST_RE = re.compile(r"\s*" + _RESP_NUM + r"(?:\s*,\s*" + _RESP_NUM + r")*\s*")
+_RESP_LIST_RE = re.compile(r"\s*" + _RESP_NUM + r"(?:\s*,\s*" + _RESP_NUM + r")*\s*", re.ASCII)
 
 
 def _sentinel(value: float) -> float:
@@ -553,7 +554,7 @@ def parse_response_string(text: str | bytes) -> str:
     return inner.replace('""', '"')
 
 
-_ERROR_RE = re.compile(r"\s*([+-]?\d+)\s*,\s*(\".*\")\s*", re.DOTALL)
+_ERROR_RE = re.compile(r"\s*([+-]?\d+)\s*,\s*(\".*\")\s*", re.DOTALL | re.ASCII)
 
 
 def parse_error_response(text: str | bytes) -> tuple[int, str]:

@@ -87,7 +87,12 @@ class Call:
 
     @property
     def suffix(self) -> int:
-        """The first (usually the only) numeric suffix; 1 when the spec has none."""
+        """The first (usually the only) numeric suffix; 1 when absent or the spec has none.
+
+        References
+        ----------
+        SCPI-1999 Vol. 1 §6.2.5 numeric suffixes, absent = 1 (from memory).
+        """
         return self.suffixes[0] if self.suffixes else 1
 
     def _token(self, i: int) -> str:
@@ -97,7 +102,14 @@ class Call:
         return self.params[i]
 
     def has(self, i: int) -> bool:
-        """True if parameter ``i`` (0-based) was sent; marks it as looked at."""
+        """Return True if parameter ``i`` (0-based) was sent; marks it as looked at.
+
+        Use it for optional parameters, so that the unit does not end with -108.
+
+        References
+        ----------
+        IEEE 488.2-1992 §7.4.2 program data separators (from memory).
+        """
         if i < len(self.params):
             self._used = max(self._used, i + 1)
             return True
@@ -122,23 +134,60 @@ class Call:
         self._checked = True
 
     def numeric(self, i: int = 0, **kw: object) -> float:
-        """Parameter ``i`` as a number; keywords as :func:`~benchctl.scpi.parse_numeric`."""
+        """Return parameter ``i`` as a number.
+
+        Parameters
+        ----------
+        i : int
+            0-based parameter index; -109 if it was not sent.
+        **kw
+            ``unit``, ``minimum``, ``maximum``, ``default`` as for
+            :func:`~benchctl.scpi.parse_numeric`.
+
+        References
+        ----------
+        IEEE 488.2-1992 §7.7.2-7.7.4 numeric program data; SCPI-1999 Vol. 1 §7.2
+        (from memory).
+        """
         return parse_numeric(self._token(i), **kw)  # type: ignore[arg-type]
 
     def integer(self, i: int = 0, **kw: object) -> int:
-        """Parameter ``i`` as a number rounded to the nearest integer (IEEE 488.2 §7.7.2.5)."""
+        """Return parameter ``i`` rounded to the nearest integer (half to even).
+
+        References
+        ----------
+        IEEE 488.2-1992 §7.7.2.5 (from memory): a device rounds a decimal number where it
+        needs an integer.
+        """
         return round(parse_numeric(self._token(i), **kw))  # type: ignore[arg-type]
 
     def boolean(self, i: int = 0) -> bool:
-        """Parameter ``i`` as a boolean (ON/OFF/<NRf>)."""
+        """Return parameter ``i`` as a boolean (``ON``/``OFF``/<NRf>).
+
+        References
+        ----------
+        SCPI-1999 Vol. 1 §7.3 Boolean program data (from memory).
+        """
         return parse_boolean(self._token(i))
 
     def choice(self, i: int, choices: tuple[str, ...] | list[str]) -> str:
-        """Parameter ``i`` as one of ``choices``, returned as declared."""
+        """Return parameter ``i`` as one of ``choices``, as declared.
+
+        See :func:`~benchctl.scpi.parse_character` (``#`` choices take a suffix).
+
+        References
+        ----------
+        IEEE 488.2-1992 §7.7.1 character program data (from memory).
+        """
         return parse_character(self._token(i), tuple(choices))
 
     def string(self, i: int = 0) -> str:
-        """Parameter ``i`` as string data (quotes removed)."""
+        """Return parameter ``i`` as string data, quotes removed.
+
+        References
+        ----------
+        IEEE 488.2-1992 §7.7.5 string program data (from memory).
+        """
         return parse_string(self._token(i))
 
     def block(self, i: int = 0) -> bytes:
@@ -232,6 +281,8 @@ def _compile_spec(spec: str) -> list[tuple[str, bool, bool]]:
         if pos > 0 and ":" not in m.group(0):
             raise ValueError(f"missing ':' between nodes in command spec {spec!r}")
         mnemonic_forms(name)  # validates capitals
+        if name[-1].isdigit():
+            raise ValueError(f"node {name!r} in {spec!r} ends in a digit; mark a suffix with '#'")
         nodes.append((name, bool(opening), bool(hash_)))
         pos = m.end()
     if all(optional for _, optional, _ in nodes):
@@ -308,6 +359,8 @@ class CommandTree:
             raise ValueError(f"command {spec!r} needs a set or a query handler")
         text = spec.strip()
         if text.endswith("?"):
+            if set is not None:
+                raise ValueError(f"query-only spec {spec!r} cannot take a set handler")
             text = text[:-1]
         if text.startswith("*"):
             name = text[1:].upper()
@@ -355,7 +408,12 @@ class CommandTree:
         self._cache.clear()
 
     def headers(self) -> list[str]:
-        """Return the declared specs in declaration order."""
+        """Return the declared specs in declaration order (without ``?``).
+
+        References
+        ----------
+        SCPI-1999 Vol. 1 §6.2 command syntax notation (from memory).
+        """
         return list(self._specs)
 
     # ------------------------------------------------------------------ matching
@@ -475,6 +533,16 @@ class CommandTree:
         context: object,
         errors: ErrorQueue,
     ) -> bytes | None:
-        """Like :meth:`execute` but bytes in, bytes out (latin-1 both ways)."""
+        """Run one program message like :meth:`execute`, with bytes in and bytes out.
+
+        Returns
+        -------
+        bytes or None
+            The responses encoded with latin-1 (one byte per character), or None.
+
+        References
+        ----------
+        IEEE 488.2-1992 §7 program messages and §8 response messages (from memory).
+        """
         out = self.execute(message, context=context, errors=errors)
         return None if out is None else out.encode("latin-1")
