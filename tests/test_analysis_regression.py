@@ -9,6 +9,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from scipy import stats
 from scipy.optimize import curve_fit
 
@@ -163,3 +165,35 @@ def test_linear_region_refuses_when_nothing_is_straight():
         linear_region(rail, np.sin(40 * rail), tol_v=1e-4, n_mc=0)
     with pytest.raises(ValueError, match="exactly one"):
         linear_region(rail, rail, tol_v=0.1, tol_fraction_fs=0.1)
+
+
+@settings(max_examples=40, deadline=None, derandomize=True)
+@given(
+    seed=st.integers(0, 10_000),
+    n=st.integers(6, 24),
+    tol=st.floats(0.005, 0.5),
+    weighted=st.booleans(),
+)
+def test_search_property_equals_brute_force(seed, n, tol, weighted):
+    # property: the prefix-sum search finds the same widest window as refitting every
+    # window from scratch (weighted refits by numpy.polyfit(w=sqrt(weight)))
+    rng = np.random.default_rng(seed)
+    x = np.sort(rng.uniform(0, 5, n)) + np.arange(n) * 1e-3
+    y = np.where(x > 2.5, 0.3 * (x - 2.5) ** 2, 0.0) + 0.4 * x + rng.normal(0, 0.02, n)
+    w = rng.uniform(0.5, 2.0, n) if weighted else np.ones(n)
+    got = _search(x - x.mean(), y - y.mean(), w, tol, 3)
+    ref = None
+    for length in range(n, 2, -1):
+        for i in range(0, n - length + 1):
+            sl = slice(i, i + length)
+            p = np.polyfit(x[sl], y[sl], 1, w=np.sqrt(w[sl]))
+            dev = float(np.max(np.abs(y[sl] - np.polyval(p, x[sl]))))
+            if dev <= tol and (ref is None or dev < ref[2]):
+                ref = (i, i + length - 1, dev)
+        if ref:
+            break
+    if ref is None:
+        assert got is None
+    else:
+        assert got is not None and got[1] - got[0] == ref[1] - ref[0]
+        assert got[2] == pytest.approx(ref[2], rel=1e-6, abs=1e-12)
