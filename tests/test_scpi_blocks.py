@@ -41,6 +41,13 @@ def test_indefinite_form() -> None:
     np.testing.assert_array_equal(decode_block(blk, dtype="int16"), [1, -2])
     # pyvisa's reader agrees once the terminator is removed (it keeps every byte).
     assert pvu.from_ieee_block(blk[:-1], "h", True) == [1, -2]
+    # Payload bytes that look like terminators survive: only the final NL is removed.
+    for tail in ([13], [10], [13, 10]):
+        data = np.array([5, *tail], dtype=np.int8)
+        blk = encode_block(data, indefinite=True)
+        np.testing.assert_array_equal(decode_block(blk, dtype="int8"), data)
+    mv = memoryview(encode_block(np.array([1.5], dtype=np.float32)))
+    assert decode_block(mv, dtype="float32")[0] == 1.5
 
 
 def test_byte_orders() -> None:

@@ -202,7 +202,7 @@ def decode_block(
     buf : bytes-like
         The whole block: header, payload and optionally the response terminator
         (``\\n`` or ``\\r\\n``) after a definite payload. An indefinite ``#0`` block runs
-        to the end of ``buf``, less one trailing ``\\n`` (or ``\\r\\n``).
+        to the end of ``buf``, less one trailing ``\\n`` (its terminator).
     dtype : str or numpy.dtype
         Element type (see :func:`block_dtype`).
     big_endian : bool
@@ -226,17 +226,19 @@ def decode_block(
     response data (from memory).
     """
     wire = block_dtype(dtype, big_endian=big_endian)
+    if isinstance(buf, memoryview):
+        buf = buf.cast("B")
     try:
         start, length = parse_block_header(buf)
     except IncompleteBlock as exc:
         raise ProtocolError("block header incomplete", exc.text) from None
-    total = len(buf) if not isinstance(buf, memoryview) else buf.nbytes
+    total = len(buf)
     if length is None:
+        # IEEE 488.2 §8.7.10 (from memory): the indefinite form ends with NL^END only; a
+        # CR before it is payload, so only one trailing NL is removed.
         end = total
         if end > start and buf[end - 1 : end] == b"\n":
             end -= 1
-            if end > start and buf[end - 1 : end] == b"\r":
-                end -= 1
         length = end - start
     else:
         extra = total - start - length

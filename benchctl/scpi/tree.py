@@ -212,10 +212,8 @@ class Call:
             raise ScpiError(-161, "malformed block header") from None
         if length is None:
             end = len(raw)
-            if raw.endswith(b"\n"):
+            if raw.endswith(b"\n"):  # NL^END ends an indefinite block; a CR is payload
                 end -= 1
-                if raw[:end].endswith(b"\r"):
-                    end -= 1
             return raw[start:end]
         if len(raw) != start + length:
             raise ScpiError(-161, f"block declares {length} bytes, {len(raw) - start} present")
@@ -254,14 +252,6 @@ class _Node:
         self.children[short] = (node, declared)
         self.children[long] = (node, declared)
         return node
-
-    def depth(self) -> int:
-        d = 0
-        node = self
-        while node.parent is not None:
-            d += 1
-            node = node.parent
-        return d
 
 
 def _compile_spec(spec: str) -> list[tuple[str, bool, bool]]:
