@@ -202,3 +202,27 @@ def test_no_pyplot_state(tmp_path):
     )
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, timeout=120, check=False)
     assert done.returncode == 0, done.stderr.decode()[-2000:]
+
+
+def test_procedure_style_columns(tmp_path):
+    # Column names as the procedures declare them: rail_set_v beside rail_v, u_<col>
+    # uncertainties, a "branch" column for up/down, m_* modulation indices vs depth_vpp.
+    rf = RunFolder.create(tmp_path / "run", plan_text="", bench_text="", meta={})
+    cols = ["rail_set_v", "rail_v", "branch", "vpp_v", "u_vpp_v", "scope_window_s", "vpp_method"]
+    for i, (branch, r) in enumerate([("up", 3.0), ("up", 4.0), ("down", 4.0), ("down", 3.0)]):
+        rf.append_point(0, "sweep", {"point": str(i), "rail_set_v": r, "rail_v": r - 0.001, "branch": branch,
+                                     "vpp_v": 0.5 * r, "u_vpp_v": 0.01, "scope_window_s": 1e-4,
+                                     "vpp_method": "sine fit"}, cols)
+    for i, depth in enumerate([0.0, 0.2, 0.4]):
+        rf.append_point(1, "modulation", {"point": str(i), "depth_vpp": depth, "m_envelope": depth * 0.9,
+                                          "u_m_envelope": 0.01, "m_predicted": depth},
+                        ["depth_vpp", "m_envelope", "u_m_envelope", "m_predicted"])
+    run = load_run(rf.path)
+    out = tmp_path / "out"
+    out.mkdir()
+    sweep = plots_mod.draw_step(run, run.steps[0], out)
+    assert [d.kind for d in sweep.drawn] == ["amplitude", "hysteresis"]  # nothing else left to plot
+    assert any("scope_window_s = 0.0001" in n for n in sweep.notes)
+    assert any("vpp_method" in n for n in sweep.notes)
+    mod = plots_mod.draw_step(run, run.steps[1], out)
+    assert [d.kind for d in mod.drawn] == ["modulation"]

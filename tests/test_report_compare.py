@@ -14,14 +14,14 @@ from benchctl.report.compare import judge
 from benchctl.store import RunFolder
 
 
-def make_run(path, revision, params, rails, vpp, *, direction=None):
+def make_run(path, revision, params, rails, vpp, *, direction=None, dcol="direction"):
     rf = RunFolder.create(path, plan_text="", bench_text="",
                           meta={"board": {"name": "beacon", "revision": revision, "serial": f"{revision}0001"}})
-    cols = ["rail_v", "vpp_v"] + (["direction"] if direction else [])
+    cols = ["rail_v", "vpp_v"] + ([dcol] if direction else [])
     for i, (r, v) in enumerate(zip(rails, vpp, strict=True)):
         row = {"point": f"{i}", "rail_v": float(r), "vpp_v": float(v)}
         if direction:
-            row["direction"] = direction[i]
+            row[dcol] = direction[i]
         rf.append_point(0, "sweep", row, cols)
     rf.write_parameters(params)
     rf.update_meta(status="complete")
@@ -96,13 +96,14 @@ def test_curve_difference_over_the_overlap(tmp_path):
     assert curve.rms_diff == pytest.approx(math.sqrt(np.mean(expected**2)), abs=1e-12)
 
 
-def test_curves_per_direction_and_no_overlap(tmp_path):
+@pytest.mark.parametrize("dcol", ["direction", "branch"])
+def test_curves_per_direction_and_no_overlap(tmp_path, dcol):
     rails = [2.0, 3.0, 4.0, 4.0, 3.0, 2.0]
     dirs = ["up", "up", "up", "down", "down", "down"]
     vpp_a = [0.0, 1.0, 2.0, 2.0, 1.0, 0.5]
     vpp_b = [0.0, 1.0, 2.0, 2.0, 1.0, 0.0]  # differs only going down, at 2 V
-    ra = make_run(tmp_path / "a", "B", {}, rails, vpp_a, direction=dirs)
-    rb = make_run(tmp_path / "b", "C", {}, rails, vpp_b, direction=dirs)
+    ra = make_run(tmp_path / "a", "B", {}, rails, vpp_a, direction=dirs, dcol=dcol)
+    rb = make_run(tmp_path / "b", "C", {}, rails, vpp_b, direction=dirs, dcol=dcol)
     curves = {c.column: c for c in compare_runs(ra, rb).curves}
     assert curves["vpp_v (up)"].max_abs_diff == 0.0
     assert curves["vpp_v (down)"].max_abs_diff == pytest.approx(0.5) and curves["vpp_v (down)"].rail_at_max_v == 2.0

@@ -12,7 +12,14 @@ from rich.markup import escape as esc
 from rich.table import Table
 
 from benchctl.report.formatting import DASH, fmt, md_table
-from benchctl.report.runview import X_CANDIDATES, RunView, StepData, finite, load_run
+from benchctl.report.runview import (
+    X_CANDIDATES,
+    RunView,
+    StepData,
+    direction_column,
+    finite,
+    load_run,
+)
 
 Verdict = Literal["same", "shifted", "missing"]
 
@@ -238,9 +245,10 @@ def _x_column(step: StepData) -> str | None:
     return next((c for c in X_CANDIDATES if c in step.frame.columns), None)
 
 
-def _curve(step: StepData, x_col: str, y_col: str, direction: str | None) -> tuple[np.ndarray, np.ndarray]:
+def _curve(step: StepData, x_col: str, y_col: str, direction: str | None,
+           dcol: str | None) -> tuple[np.ndarray, np.ndarray]:
     xs, ys = [], []
-    dirs = step.frame["direction"].tolist() if direction is not None else None
+    dirs = step.frame[dcol].tolist() if direction is not None and dcol else None
     for i, (x, y) in enumerate(zip(step.frame[x_col].tolist(), step.frame[y_col].tolist(), strict=True)):
         if dirs is not None and str(dirs[i]) != direction:
             continue
@@ -271,14 +279,15 @@ def _curves(a: RunView, b: RunView) -> list[CurveDelta]:
                 out.append(CurveDelta(sa.name, column, None, None, 0, None, None, None, "not in run B"))
                 continue
             directions: list[str | None] = [None]
-            if "direction" in sa.frame.columns and "direction" in sb.frame.columns:
-                da = dict.fromkeys(str(d) for d in sa.frame["direction"].tolist())
-                db = {str(d) for d in sb.frame["direction"].tolist()}
+            dcol_a, dcol_b = direction_column(sa.frame.columns), direction_column(sb.frame.columns)
+            if dcol_a and dcol_a == dcol_b:
+                da = dict.fromkeys(str(d) for d in sa.frame[dcol_a].tolist())
+                db = {str(d) for d in sb.frame[dcol_b].tolist()}
                 directions = [d for d in da if d in db] or [None]
             for direction in directions:
                 label = column if direction is None else f"{column} ({direction})"
-                out.append(_curve_delta(sa.name, label, _curve(sa, xa, column, direction),
-                                        _curve(sb, xb, column, direction)))
+                out.append(_curve_delta(sa.name, label, _curve(sa, xa, column, direction, dcol_a),
+                                        _curve(sb, xb, column, direction, dcol_b)))
     return out
 
 

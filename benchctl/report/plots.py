@@ -8,8 +8,8 @@ was measured is silently left out.
 
 Column naming the plots understand (the procedures' units-in-names convention):
 ``rail_v`` on x; ``vpp*_v`` amplitude; ``freq*_hz`` frequency; ``*current*_a`` or ``i_*_a``
-supply current; ``thd*`` distortion; ``direction`` (up/down) for hysteresis; ``*depth*`` with
-``*index*`` for modulation; uncertainty of ``X_v`` in ``X_u_v``, ``X_std_v``, ``X_unc_v``,
+supply current; ``thd*`` distortion; ``direction`` or ``branch`` (up/down) for hysteresis;
+``*depth*`` with ``*index*`` or ``m_*`` for modulation; uncertainty of ``X_v`` in ``X_u_v``, ``X_std_v``, ``X_unc_v``,
 ``X_sigma_v``, ``u_X_v`` or ``X_v_u``; cells ending in ``.npz`` reference waveforms.
 """
 
@@ -26,7 +26,8 @@ import pandas as pd
 from matplotlib.figure import Figure
 
 from benchctl.errors import ConfigError
-from benchctl.report.runview import X_CANDIDATES, RunView, StepData, finite
+from benchctl.report.formatting import fmt
+from benchctl.report.runview import X_CANDIDATES, RunView, StepData, direction_column, finite
 
 MAX_GENERIC_PLOTS = 8
 MAX_WAVEFORMS = 4
@@ -84,7 +85,7 @@ def draw_step(run: RunView, step: StepData, out_dir: Path) -> StepPlots:
         result.notes.append("no points recorded")
         return result
     x = next((c for c in X_CANDIDATES if c in frame.columns and _numeric(frame[c]) is not None), None)
-    ctx = _Ctx(run, step, x, {"point"} | ({x} if x else set()), result.notes)
+    ctx = _Ctx(run, step, x, {"point", *X_CANDIDATES}, result.notes)
     for kind, fn in KINDS.items():
         for n, (title, fig) in enumerate(fn(ctx)):
             name = f"{step.label}-{kind}{'' if n == 0 else f'-{n + 1}'}.png"
@@ -156,7 +157,7 @@ def _series_plot(ctx: _Ctx, columns: list[str], title: str, *, shade: bool = Fal
     x, xlabel = _xvalues(ctx)
     ylabel = _unit_label(columns[0]) if len(columns) == 1 else ", ".join(columns)
     fig, ax = _xy_axes(title, xlabel, ylabel)
-    style = "o" if "direction" in frame.columns else "o-"  # up and down: no joining line
+    style = "o" if direction_column(frame.columns) else "o-"  # up and down: no joining line
     for column in columns:
         y = _numeric(frame[column])
         unc = _uncertainty_column(frame, column)
@@ -219,12 +220,13 @@ def _thd(ctx: _Ctx) -> list[tuple[str, Figure]]:
 @plot_kind("hysteresis")
 def _hysteresis(ctx: _Ctx) -> list[tuple[str, Figure]]:
     frame = ctx.step.frame
-    if "direction" not in frame.columns or ctx.x is None:
+    dcol = direction_column(frame.columns)
+    if dcol is None or ctx.x is None:
         return []
-    ctx.used.add("direction")
+    ctx.used.add(dcol)
     candidates = [c for c in frame.columns if c.startswith("vpp") and c.endswith("_v") and not _is_unc(c)]
     if not candidates:
-        candidates = [c for c in frame.columns if c not in ("point", "direction", ctx.x)
+        candidates = [c for c in frame.columns if c not in ("point", dcol, *X_CANDIDATES)
                       and not _is_unc(c) and _numeric(frame[c]) is not None]
     if not candidates:
         ctx.notes.append("direction column present but no numeric column to show hysteresis")
@@ -233,11 +235,12 @@ def _hysteresis(ctx: _Ctx) -> list[tuple[str, Figure]]:
     fig, ax = _xy_axes("Sweep up vs down (hysteresis)", f"{ctx.x} (V)", _unit_label(column))
     x = _numeric(frame[ctx.x])
     y = _numeric(frame[column])
-    directions = frame["direction"].astype(str).tolist()
+    directions = frame[dcol].astype(str).tolist()
     for label in dict.fromkeys(directions):
         mask = np.array([d == label for d in directions])
-        ax.plot(x[mask], y[mask], "o-", ms=3, lw=1, label=f"{label}")
-    ax.legend(fontsize="small", title="direction")
+        order = np.argsort(x[mask], kind="stable")
+        ax.plot(x[mask][order], y[mask][order], "o-", ms=3, lw=1, label=f"{label}")
+    ax.legend(fontsize="small", title=dcol)
     ctx.used.add(column)
     return [("Sweep up vs down (hysteresis)", fig)]
 
@@ -248,7 +251,8 @@ def _modulation(ctx: _Ctx) -> list[tuple[str, Figure]]:
     depth = next((c for c in frame.columns if "depth" in c and _numeric(frame[c]) is not None), None)
     if depth is None:
         return []
-    cols = [c for c in frame.columns if "index" in c and not _is_unc(c) and _numeric(frame[c]) is not None]
+    cols = [c for c in frame.columns if ("index" in c or c.startswith("m_")) and not _is_unc(c)
+            and _numeric(frame[c]) is not None]
     if not cols:
         ctx.notes.append(f"{depth} present but no modulation index column")
         return []
@@ -329,6 +333,11 @@ def _other(ctx: _Ctx) -> list[tuple[str, Figure]]:
     rest = [c for c in frame.columns if c not in ctx.used and not _is_unc(c)]
     numeric = [c for c in rest if _numeric(frame[c]) is not None]
     text = [c for c in rest if c not in numeric]
+    constant = [c for c in numeric if len(frame) > 1 and len(set(np.unique(_numeric(frame[c])).tolist())) == 1]
+    if constant:
+        ctx.notes.append("not plotted (the same in every point): "
+                         + ", ".join(f"{c} = {fmt(_numeric(frame[c])[0])}" for c in constant))
+        numeric = [c for c in numeric if c not in constant]
     out = []
     for column in numeric[:MAX_GENERIC_PLOTS]:
         label = f"{column} vs rail" if ctx.x else f"{column} by point"

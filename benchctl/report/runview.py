@@ -22,6 +22,13 @@ from benchctl.store import RunFolder
 
 X_CANDIDATES = ("rail_v", "rail_set_v", "set_v", "supply_v")
 """Columns taken as the rail axis, first found wins."""
+DIRECTION_COLUMNS = ("direction", "branch")
+"""Columns that tell a sweep going up from one coming down (values such as up / down)."""
+
+
+def direction_column(columns) -> str | None:
+    """The first of :data:`DIRECTION_COLUMNS` among ``columns``, or None."""
+    return next((c for c in DIRECTION_COLUMNS if c in columns), None)
 
 
 @dataclass(frozen=True)
