@@ -197,3 +197,15 @@ def test_search_property_equals_brute_force(seed, n, tol, weighted):
     else:
         assert got is not None and got[1] - got[0] == ref[1] - ref[0]
         assert got[2] == pytest.approx(ref[2], rel=1e-6, abs=1e-12)
+
+
+@pytest.mark.parametrize("seed", [5, 6])
+def test_search_with_probe_pass_equals_brute_force_on_long_windows(seed):
+    # windows longer than 64 points take the probe-first path; same answer as refits
+    rng = np.random.default_rng(seed)
+    x = np.linspace(0.0, 10.0, 100)
+    y = np.where(x > 7.5, 0.2 * (x - 7.5) ** 2, 0.0) + 0.3 * x + rng.normal(0, 0.01, x.size)
+    got = _search(x - x.mean(), y - y.mean(), np.ones_like(x), 0.04, 5)
+    ref = brute_force(x, y, 0.04, 5)
+    assert ref is not None and ref[1] - ref[0] + 1 > 64
+    assert got is not None and got[:2] == ref[:2]

@@ -255,6 +255,17 @@ def _search(
         cand = starts[maybe[starts, ends]]
         if cand.size == 0:
             continue
+        if L > 64 and cand.size > 8:
+            # cheap first pass on 33 spread points (ends included): a window failing there
+            # fails; only the survivors get the full check
+            probe = np.unique(np.linspace(0, L - 1, 33).astype(np.intp))
+            cols = cand[:, None] + probe[None, :]
+            e = cand + L - 1
+            dev_p = np.abs(y[cols] - (slope[cand, e][:, None] * x[cols] + icpt[cand, e][:, None]))
+            keep = (dev_p.max(axis=1) <= tol_v) | sure[cand, e]
+            cand = cand[keep]
+            if cand.size == 0:
+                continue
         e = cand + L - 1
         xs = sliding_window_view(x, L)[cand]
         ys = sliding_window_view(y, L)[cand]
