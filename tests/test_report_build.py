@@ -188,6 +188,14 @@ def test_linear_region_is_shaded(tmp_path):
     assert len(spans) == 1
     x0, x1 = spans[0].get_x(), spans[0].get_x() + spans[0].get_width()
     assert (x0, x1) == (3.0, 5.5)
+    # the region found by another step still shades the sweep
+    rf.write_parameters({"linear_lo_v": {"value": 3.5, "step": "linear_region"},
+                         "linear_region.linear_hi_v": {"value": 5.0, "step": "linear_region"}})
+    run = load_run(rf.path)
+    ctx = plots_mod._Ctx(run, run.steps[0], "rail_v", {"point", "rail_v"}, [])
+    [(_, fig)] = plots_mod.KINDS["amplitude"](ctx)
+    [span] = [p for p in fig.axes[0].patches if isinstance(p, Rectangle)]
+    assert (span.get_x(), span.get_x() + span.get_width()) == (3.5, 5.0)
     assert "vpp_u_v" in ctx.used  # drawn as error bars, not as a plot of its own
     assert ax.containers and len(ax.containers[0].lines[2]) == 1  # one errorbar collection
 

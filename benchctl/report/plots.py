@@ -176,12 +176,23 @@ def _series_plot(ctx: _Ctx, columns: list[str], title: str, *, shade: bool = Fal
 
 
 def _shade_linear(ctx: _Ctx, ax) -> None:
-    params = ctx.run.step_parameters(ctx.step.name)
-    lo = finite(params.get("linear_lo_v", {}).get("value"))
-    hi = finite(params.get("linear_hi_v", {}).get("value"))
+    lo, hi = _run_value(ctx, "linear_lo_v"), _run_value(ctx, "linear_hi_v")
     if lo is not None and hi is not None and ctx.x is not None:
         ax.axvspan(min(lo, hi), max(lo, hi), color="tab:green", alpha=0.15,
                    label=f"linear region {lo:.3g}-{hi:.3g} V")
+
+
+def _run_value(ctx: _Ctx, name: str) -> float | None:
+    """A parameter's value: this step's first, else the run's (the linear region is often
+    found by a step of its own; the runner names repeats ``<step>.<name>``)."""
+    mine = ctx.run.step_parameters(ctx.step.name)
+    for params in (mine, ctx.run.parameters):
+        for key, p in params.items():
+            if key == name or key.endswith(f".{name}"):
+                value = finite(p.get("value"))
+                if value is not None:
+                    return value
+    return None
 
 
 # ---------------------------------------------------------------- kinds
