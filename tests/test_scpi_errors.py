@@ -5,7 +5,9 @@ from __future__ import annotations
 import pytest
 
 from benchctl.scpi import (
+    INTERRUPTED_QUERY,
     STANDARD_ERRORS,
+    UNTERMINATED_QUERY,
     CommandTree,
     ErrorQueue,
     ScpiError,
@@ -31,6 +33,13 @@ def test_standard_table() -> None:
     assert error_message(-199) == "Command error"  # unlisted code: its class message
     assert error_message(-299) == "Execution error"
     assert error_message(-401) == "Query error"
+
+
+def test_query_error_constants() -> None:
+    # IEEE 488.2-1992 §6.3.2 / SCPI-1999 Vol. 2 §21.8.11 (from memory): -410 query
+    # INTERRUPTED, -420 query UNTERMINATED.
+    assert INTERRUPTED_QUERY == -410 and STANDARD_ERRORS[INTERRUPTED_QUERY] == "Query INTERRUPTED"
+    assert UNTERMINATED_QUERY == -420 and STANDARD_ERRORS[UNTERMINATED_QUERY] == "Query UNTERMINATED"
 
 
 def test_scpi_error_carries_code_and_info() -> None:

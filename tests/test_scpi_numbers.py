@@ -299,7 +299,14 @@ def test_response_list() -> None:
     assert got[0] == 1.0 and math.isnan(got[1]) and got[2] == math.inf
     with pytest.raises(ProtocolError) as info:
         parse_response_list("1,2,x,4")
-    assert "x" in str(info.value)
+    assert "element 3" in str(info.value) and "'x'" in str(info.value)
+    for bad in ["1 2", "1..2", "+-1", "1e", "inf", "1_0", "0x1"]:
+        with pytest.raises(ProtocolError):
+            parse_response_list(f"0,{bad}")
+    long = ",".join(["1"] * 200) + ",bad"
+    with pytest.raises(ProtocolError) as info:
+        parse_response_list(long)
+    assert len(str(info.value)) < 200  # the offending text is shortened
     with pytest.raises(ProtocolError):
         parse_response_list("1,,2")
 

@@ -438,7 +438,7 @@ _RESP_NUM = r"[+-]?(?:\d+(?:\.\d*)?|\.\d+)(?:[eE][+-]?\d+)?"
 _RESP_NUM_RE = re.compile(r"\s*(" + _RESP_NUM + r")\s*", re.ASCII)
 _RESP_SPECIAL = {"NAN": math.nan, "INF": math.inf, "+INF": math.inf, "-INF": -math.inf,
                  "NINF": -math.inf}
-_RESP_LIST_RE = re.compile(r"\s*" + _RESP_NUM + r"(?:\s*,\s*" + _RESP_NUM + r")*\s*", re.ASCII)
+_RESP_LIST_CHARS = re.compile(r"[0-9eE+\-., \t\r\n]*", re.ASCII)
 
 
 def _sentinel(value: float) -> float:
@@ -493,12 +493,26 @@ def parse_response_list(text: str | bytes) -> list[float]:
         text = bytes(text).decode("ascii", errors="replace")
     if not text.strip():
         return []
-    if _RESP_LIST_RE.fullmatch(text) is not None:
-        values = [float(t) for t in text.split(",")]
-        if any(abs(v) >= 9.9e37 * (1 - 1e-6) for v in values):
-            values = [_sentinel(v) for v in values]
-        return values
-    return [parse_response_number(t) for t in text.split(",")]
+    if _RESP_LIST_CHARS.fullmatch(text) is not None:
+        # Within this character set float() accepts exactly the NR1/NR2/NR3 forms
+        # (no letters but E, so no "inf"/"nan"; no "_"), so it validates as it converts.
+        try:
+            values = [float(t) for t in text.split(",")]
+        except ValueError:
+            pass
+        else:
+            if any(abs(v) >= 9.9e37 * (1 - 1e-6) for v in values):
+                values = [_sentinel(v) for v in values]
+            return values
+    out = []
+    for i, item in enumerate(text.split(",")):
+        try:
+            out.append(parse_response_number(item))
+        except ProtocolError:
+            raise ProtocolError(
+                f"element {i + 1} of a numeric list is not a number ({item.strip()[:20]!r})", text
+            ) from None
+    return out
 
 
 def parse_response_boolean(text: str | bytes) -> bool:

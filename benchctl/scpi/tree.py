@@ -310,7 +310,8 @@ class CommandTree:
         self._root = _Node("", None)
         self._common: dict[tuple[str, bool], _Entry] = {}
         self._specs: list[str] = []
-        self._cache: dict[tuple[str, bool], tuple[_Entry, tuple[int, ...], _Node, tuple]] = {}
+        # (path node, path suffixes, HEADER, query) -> (entry, suffixes, new path, suffixes)
+        self._cache: dict[tuple, tuple[_Entry, tuple[int, ...], _Node, tuple]] = {}
 
     # ------------------------------------------------------------------ declaration
     def add(
@@ -491,16 +492,15 @@ class CommandTree:
                         raise ScpiError(-113, "*" + unit.header + ("?" if unit.query else ""))
                     suffixes: tuple[int, ...] = ()
                 else:
-                    if unit.rooted or path_node is self._root:
-                        key = (unit.header.upper(), unit.query)
-                        hit = self._cache.get(key)
-                        if hit is None:
-                            hit = self._resolve(unit, self._root, ())
-                            if len(self._cache) >= _CACHE_LIMIT:
-                                self._cache.clear()
-                            self._cache[key] = hit
-                    else:
+                    if unit.rooted:
+                        path_node, path_vals = self._root, ()
+                    key = (path_node, path_vals, unit.header.upper(), unit.query)
+                    hit = self._cache.get(key)
+                    if hit is None:
                         hit = self._resolve(unit, path_node, path_vals)
+                        if len(self._cache) >= _CACHE_LIMIT:
+                            self._cache.clear()
+                        self._cache[key] = hit
                     entry, suffixes, path_node, path_vals = hit
                 call = Call(entry.spec, suffixes, unit.params, context, errors, unit.query)
                 result = entry.handler(call)
