@@ -21,7 +21,7 @@ from typing import Any, Literal
 import numpy as np
 
 from benchctl import analysis
-from benchctl.errors import MeasurementError
+from benchctl.errors import InstrumentError, MeasurementError
 from benchctl.procedures.base import Column
 from benchctl.procedures.common import Vote, finite_or_none
 
@@ -109,16 +109,31 @@ def acquire_output(ctx: Any, *, timeout_s: float) -> Any:
     return scope.fetch(ctx.bench.wiring.output_channel)
 
 
-def _autoscale(scope: Any, channel: int, opts: MeasureOptions) -> Any:
-    """Autoscale; a record with no periodic signal (a board that is off) may not settle --
-    then the last set-up stays and the detector decides on the record taken with it."""
+FALLBACK_SETUP = ScopeSetup(scale_v_div=0.5, offset_v=0.0, window_s=1e-3, sample_rate_hz=1e7)
+"""Set-up used when autoscale finds no periodic signal (a board that is off): 4 V full screen,
+1 ms at 10 MS/s -- a stopped board reads as noise/flat, a running one would be seen."""
+
+
+def _autoscale(scope: Any, channel: int, opts: MeasureOptions) -> bool:
+    """Autoscale; False when it found no periodic signal to scale on (the board is off).
+
+    The driver's autoscale raises MeasurementError when it does not settle, and a noise-only
+    record can drive its timebase out of the instrument's range (SCPI error -222, data out
+    of range); both mean "nothing to scale on", and :data:`FALLBACK_SETUP` is applied.
+    """
     kw: dict[str, Any] = {"cycles": opts.cycles, "timeout_s": opts.timeout_s}
     if opts.first_window_s is not None:
         kw["first_window_s"] = opts.first_window_s
     try:
-        return scope.autoscale(channel, **kw)
+        scope.autoscale(channel, **kw)
+        return True
     except MeasurementError:
-        return None
+        pass
+    except InstrumentError as exc:
+        if exc.code != -222:
+            raise
+    FALLBACK_SETUP.apply(scope, channel)
+    return False
 
 
 def measure_output(ctx: Any, opts: MeasureOptions, *, rail_set_v: float) -> dict[str, Any]:
@@ -133,9 +148,10 @@ def measure_output(ctx: Any, opts: MeasureOptions, *, rail_set_v: float) -> dict
     ch = bench.wiring.output_channel
     scope = bench.scope
     rescales = 0
-    _autoscale(scope, ch, opts)
+    scaled = _autoscale(scope, ch, opts)
+    want = opts.records if scaled else 1
     waves: list[Any] = []
-    while len(waves) < opts.records:
+    while len(waves) < want:
         wf = acquire_output(ctx, timeout_s=opts.timeout_s)
         if wf.clipped_samples > 0:
             if rescales >= opts.max_rescales:
@@ -144,10 +160,13 @@ def measure_output(ctx: Any, opts: MeasureOptions, *, rail_set_v: float) -> dict
                     f" after {rescales} re-autoscales")
             rescales += 1
             waves.clear()
-            _autoscale(scope, ch, opts)
+            scaled = _autoscale(scope, ch, opts)
+            want = opts.records if scaled else 1
             continue
         waves.append(wf)
     row = analyse_records(waves, opts)
+    if not scaled:
+        row["osc_evidence"] = "autoscale found no periodic signal; " + row["osc_evidence"]
     row.update(rail_set_v=float(rail_set_v), rescales=rescales)
     row["rail_v"] = finite_or_none(bench.supply.measure_voltage())
     row["current_a"] = finite_or_none(bench.supply.measure_current())
@@ -236,6 +255,21 @@ def vote_from(detection: Any, *, clear_margin_db: float, min_snr_db: float = 10.
     score = float(min(margins))
     clear = abs(score) >= clear_margin_db and (score > 0) == osc
     return Vote(osc, clear, score)
+
+
+def dwell(ctx: Any, seconds: float, *, timeout_s: float = 5.0, points: int = 2000) -> None:
+    """Wait ``seconds`` by watching the output: one free-running record that long.
+
+    Waiting through an acquisition rather than a sleep keeps the wait on the bench's own
+    time base (an accelerated simulated bench models the elapsed time; a real one simply
+    takes that long). The record is not used; the caller re-applies its own set-up.
+    """
+    if seconds <= 0:
+        return
+    scope = ctx.bench.scope
+    scope.set_trigger(source="free")
+    scope.set_timebase(window_s=seconds, sample_rate_hz=points / seconds)
+    scope.acquire(timeout_s=timeout_s + seconds)
 
 
 def probe_oscillation(ctx: Any, setup: ScopeSetup, *, band_hz: tuple[float, float] | None,

@@ -32,6 +32,7 @@ from benchctl.procedures.common import (
 from benchctl.procedures.measure import (
     OUTPUT_COLUMNS,
     SETUP_COLUMNS,
+    dwell,
     measure_output,
     probe_oscillation,
     setup_as_row,
@@ -108,6 +109,9 @@ class DropoutStartup(Procedure):
               "evidence this far from the detector's threshold decides alone", minimum=0.0),
         Param("off_s", float, "s", 0.01, "output off this long before each start-up probe",
               minimum=0.0),
+        Param("startup_wait_s", float, "s", 0.02, "after each start-up probe's power-on, the "
+              "output is watched this long before the decision record (slow growth near the "
+              "threshold)", minimum=0.0),
         Param("start_hold_s", float, "s", 0.01, "hold at running_v before lowering the rail",
               minimum=0.0),
         Param("search", str, "", "both", "which thresholds to find",
@@ -180,6 +184,7 @@ class DropoutStartup(Procedure):
                                            start_hold_s=float(params["start_hold_s"]))
                     else:
                         tracker.power_cycle_at(rail_v, off_s=float(params["off_s"]))
+                        dwell(ctx, float(params["startup_wait_s"]), timeout_s=opts.timeout_s)
                     det, _wf = probe_oscillation(ctx, setup, band_hz=band, timeout_s=opts.timeout_s)
                     vote = vote_from(det, clear_margin_db=clear_db)
                     return {
