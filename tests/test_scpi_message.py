@@ -113,3 +113,10 @@ def test_split_params_recovers_the_tokens(params: list[str], sep: str) -> None:
     assert list(split_params(sep.join(params))) == params
     units, err = split_units("A " + sep.join(params) + ";B")
     assert err is None and units[-1] == "B" and len(units) == 2
+
+
+def test_control_characters_are_white_space() -> None:
+    # IEEE 488.2-1992 §7.4.1.2 (from memory): bytes 00-09 and 0B-20 are white space.
+    u = parse_unit("\x00\x0bVOLT\x01\x1f5\x02,\x7f")
+    assert u.header == "VOLT" and u.params[0] == "5"
+    assert u.params[1] == "\x7f"  # DEL (7F) is not white space

@@ -19,11 +19,14 @@ from dataclasses import dataclass
 from benchctl.scpi.errors import ScpiError
 from benchctl.scpi.mnemonic import MAX_MNEMONIC_CHARS
 
-_WS = " \t\r\n"
+# IEEE 488.2-1992 §7.4.1.2 (from memory): <white space> is any of the bytes 00-09 and
+# 0B-20 hex; NL (0A) is the terminator, taken here as white space where it can only end
+# the message.
+_WS = "".join(chr(c) for c in range(33))
 _SLOW_CHARS = re.compile(r"[\"'#(]")
 _SPECIAL = re.compile(r"[\"';#()]")
 _HEADER = re.compile(
-    r"[ \t\r\n]*(:?)(\*?)([A-Za-z][A-Za-z0-9_]*(?::[A-Za-z][A-Za-z0-9_]*)*)(\?)?"
+    r"[\x00-\x20]*(:?)(\*?)([A-Za-z][A-Za-z0-9_]*(?::[A-Za-z][A-Za-z0-9_]*)*)(\?)?"
 )
 _INFO_CHARS = 40
 

@@ -75,8 +75,8 @@ MAX_SUFFIX_CHARS = 12
 
 _DECIMAL = re.compile(
     r"([+-]?)(\d*)(?:\.(\d*))?"  # sign, integer part, fraction
-    r"(?:[ \t]*[eE][ \t]*([+-]?\d+))?"  # exponent, white space allowed around E
-    r"(?:[ \t]*([A-Za-z][A-Za-z/]*))?",  # suffix unit with optional multiplier
+    r"(?:[\x00-\x20]*[eE][\x00-\x20]*([+-]?\d+))?"  # exponent, white space allowed around E
+    r"(?:[\x00-\x20]*([A-Za-z][A-Za-z/]*))?",  # suffix unit with optional multiplier
     re.ASCII,
 )
 _NONDECIMAL = re.compile(r"#([HhQqBb])([0-9A-Za-z]*)")
