@@ -210,19 +210,22 @@ def _summarise(console: Console, run_dir: Path, outcome: Outcome, report: Path |
 
 
 def parameters_table(params: Mapping[str, Mapping[str, Any]]) -> Table:
+    """Derived parameters for the terminal; methods and notes are in the report and JSON."""
     table = Table(title="Derived parameters")
-    for col in ("parameter", "value", "uncertainty", "unit", "method", "spec", "verdict"):
-        table.add_column(col, justify="right" if col in ("value", "uncertainty") else "left")
+    for col in ("parameter", "value", "u (1 sigma)", "unit", "spec", "verdict"):
+        table.add_column(col, justify="right" if col in ("value", "u (1 sigma)") else "left",
+                         no_wrap=col == "parameter")
     for name, p in params.items():
         spec = p.get("spec") or {}
         spec_text = " ".join(f"{k} {v:g}" for k, v in spec.items() if v is not None)
-        table.add_row(name, _fmt(p.get("value")), _fmt(p.get("uncertainty")), str(p.get("unit") or ""),
-                      str(p.get("method") or ""), spec_text, str(p.get("verdict") or ""))
+        value = _fmt(p.get("value"), 6) if p.get("value") is not None else "n/a"
+        table.add_row(name, value, _fmt(p.get("uncertainty"), 2), str(p.get("unit") or ""), spec_text,
+                      str(p.get("verdict") or ""))
     return table
 
 
-def _fmt(value: Any) -> str:
-    return "" if value is None else f"{value:.6g}" if isinstance(value, float) else str(value)
+def _fmt(value: Any, digits: int = 6) -> str:
+    return "" if value is None else f"{value:.{digits}g}" if isinstance(value, float) else str(value)
 
 
 def _cmd_demo(args: argparse.Namespace, console: Console) -> int:

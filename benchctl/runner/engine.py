@@ -119,9 +119,10 @@ def execute(
             bench = open_bench()
             folder.update_meta(instruments={role: _idn_dict(idn) for role, idn in bench.idn.items()})
             arm(bench, plan.limits, log)
+            shared = shared_result_names(plan)
             for step in plan.steps:
                 record = _run_step(step, plan, bench, folder, history, clock, abort, events, counts)
-                parameters.update(_step_parameters(step, record))
+                parameters.update(_step_parameters(step, record, shared))
                 folder.write_parameters(parameters)
             failed = [n for n, p in parameters.items() if p.get("verdict") == "fail"]
             outcome = Outcome(
@@ -194,7 +195,21 @@ def _run_step(step, plan, bench, folder, history, clock, abort, events, counts) 
     return record
 
 
-def _step_parameters(step, record: StepRecord) -> dict[str, dict[str, Any]]:
+def shared_result_names(plan: Plan) -> set[str]:
+    """Result names that more than one step of the plan declares (they get the step's name)."""
+    seen: dict[str, int] = {}
+    for step in plan.steps:
+        for name in base.get(step.procedure).results:
+            seen[name] = seen.get(name, 0) + 1
+    return {name for name, count in seen.items() if count > 1}
+
+
+def parameter_key(step_name: str, name: str, shared: set[str]) -> str:
+    """``name``, or ``<step>.<name>`` when several steps of the plan give ``name``."""
+    return f"{step_name}.{name}" if name in shared else name
+
+
+def _step_parameters(step, record: StepRecord, shared: set[str]) -> dict[str, dict[str, Any]]:
     out: dict[str, dict[str, Any]] = {}
     for name, result in record.results.items():
         entry = {k: _plain(v) for k, v in asdict(result).items() if k != "name"}
@@ -202,13 +217,12 @@ def _step_parameters(step, record: StepRecord) -> dict[str, dict[str, Any]]:
         limit = step.spec.get(name)
         entry["spec"] = limit.as_dict() if limit else None
         entry["verdict"] = limit.verdict(result.value) if limit else None
-        key = name if name not in out else f"{step.name}.{name}"
-        out[key] = entry
+        out[parameter_key(step.name, name, shared)] = entry
     for name, limit in step.spec.items():
         if name not in record.results:  # a spec on a parameter the step did not give fails
-            out[name] = {"value": None, "unit": "", "uncertainty": None, "method": "", "low": None,
-                         "high": None, "note": "not determined by the step", "step": step.name,
-                         "spec": limit.as_dict(), "verdict": "fail"}
+            out[parameter_key(step.name, name, shared)] = {
+                "value": None, "unit": "", "uncertainty": None, "method": "", "low": None, "high": None,
+                "note": "not determined by the step", "step": step.name, "spec": limit.as_dict(), "verdict": "fail"}
     return out
 
 
