@@ -33,6 +33,8 @@ Slope = Literal["rising", "falling"]
 TransferMode = Literal["int8", "int16", "ascii"]
 #: Extreme codes of an 8-bit ADC: a sample there is at a screen edge (clipped).
 _ADC8_MIN, _ADC8_MAX = -128, 127
+#: Samples decoded at a time while a block arrives (cache-sized pieces decode fastest).
+_DECODE_MIN_SAMPLES = 65536
 
 
 @dataclass(frozen=True)
@@ -140,6 +142,43 @@ def dominant_frequency(volts: np.ndarray, dt_s: float) -> float:
     else:
         delta = 0.0
     return float((k + delta) / (n * dt_s))
+
+
+class _BlockDecoder:
+    """Turns block codes into volts piece by piece while the block is still arriving.
+
+    ``volts = code * dy + y0`` with the code as transferred (wire contract, DEVELOPERS.md).
+    """
+
+    def __init__(self, points: int, dtype: np.dtype, dy_v: float, y0_v: float, *, clip_lo: int, clip_hi: int) -> None:
+        self.volts = np.empty(points, dtype=np.float64)
+        self.dtype = dtype
+        self.dy_v = float(dy_v)
+        self.y0_v = float(y0_v)
+        self.clip_lo = clip_lo
+        self.clip_hi = clip_hi
+        self.clipped = 0  # codes at either extreme (the screen edges)
+        self.done = 0  # samples decoded
+
+    def __call__(self, buffer: bytearray, n_bytes: int) -> None:
+        upto = min(n_bytes // self.dtype.itemsize, self.volts.size)
+        if upto - self.done < _DECODE_MIN_SAMPLES and upto < self.volts.size:
+            return  # wait for a worthwhile, cache-sized piece
+        codes = np.frombuffer(buffer, dtype=self.dtype, count=upto - self.done, offset=self.done * self.dtype.itemsize)
+        if not self.dtype.isnative:
+            codes = codes.astype(self.dtype.newbyteorder("="))  # one swap, then native speed
+        part = self.volts[self.done : upto]
+        np.multiply(codes, self.dy_v, out=part)
+        if self.y0_v:
+            part += self.y0_v
+        if codes.size and (codes.min() <= self.clip_lo or codes.max() >= self.clip_hi):
+            self.clipped += int(np.count_nonzero(codes <= self.clip_lo) + np.count_nonzero(codes >= self.clip_hi))
+        self.done = upto
+
+    def finish(self, payload: bytes | bytearray) -> np.ndarray:
+        if self.done < self.volts.size:
+            self(bytearray(payload) if isinstance(payload, bytes) else payload, len(payload))
+        return self.volts
 
 
 @register_driver("scope")
@@ -313,21 +352,21 @@ class Scope(Instrument):
         else:
             width = 2 if mode == "int16" else 1
             text = self.dialect.op("fetch_block").render(channel=channel)
-            payload = self.transport.read_block(text, expected_bytes=points * width)
             if mode == "int16":
-                codes = np.frombuffer(payload, dtype=">i2" if self.dialect.int16_big_endian else "<i2")
-                codes8 = codes >> 8  # INTeger,16 carries the 8-bit code times 256
+                dtype = np.dtype(">i2" if self.dialect.int16_big_endian else "<i2")
+                lo, hi = _ADC8_MIN * 256, _ADC8_MAX * 256  # INTeger,16 = 8-bit code x 256
             else:
-                codes = codes8 = np.frombuffer(payload, dtype="i1")
-            # volts = code * dy + y0, the code as transferred (wire contract, DEVELOPERS.md)
-            volts = codes.astype(np.float64)
-            volts *= scale["dy_v"]
-            volts += scale["y0_v"]
-            clipped = int(np.count_nonzero((codes8 <= _ADC8_MIN) | (codes8 >= _ADC8_MAX)))
-        if self.dialect.has("clipped"):
-            clipped = int(self.ask("clipped", channel=channel))
-        elif clipped is None:
-            clipped = self._clip_from_screen(channel, volts)
+                dtype = np.dtype("i1")
+                lo, hi = _ADC8_MIN, _ADC8_MAX
+            decoder = _BlockDecoder(points, dtype, scale["dy_v"], scale["y0_v"], clip_lo=lo, clip_hi=hi)
+            payload = self.transport.read_block(text, expected_bytes=points * width, on_data=decoder)
+            volts = decoder.finish(payload)
+            clipped = decoder.clipped  # counted from the codes themselves: no extra query
+        if clipped is None:
+            if self.dialect.has("clipped"):
+                clipped = int(self.ask("clipped", channel=channel))
+            else:
+                clipped = self._clip_from_screen(channel, volts)
         return Waveform(volts=volts, dt_s=dt_s, t0_s=float(scale["t0_s"]), clipped_samples=clipped, channel=channel)
 
     def _set_format(self, op: str) -> None:
@@ -420,8 +459,12 @@ class Scope(Instrument):
             lo, hi = float(np.min(wf.volts)), float(np.max(wf.volts))
             vpp = hi - lo
             sigma = noise_sigma(wf.volts)
+            # the signal's own noise: take out the quantisation noise q^2/12 of this screen
+            # (Widrow's model, from memory), which shrinks with the scale being chosen
+            q_v = DIVISIONS * scale / 256
+            sigma_signal = math.sqrt(max(sigma**2 - q_v**2 / 12, 0.0))
             offset_new = 0.5 * (hi + lo)
-            half_span = 0.5 * vpp + noise_sigmas * sigma
+            half_span = 0.5 * vpp + noise_sigmas * sigma_signal
             scale_new = max(half_span / (target_div / 2), 1e-6)
             f_est = dominant_frequency(wf.volts, wf.dt_s)
             if math.isfinite(f_est) and f_est * window_s >= 1.5:
@@ -434,11 +477,11 @@ class Scope(Instrument):
                 window_new = window_s
             settled = (
                 stage == "fit"
-                and math.isclose(scale_new, scale, rel_tol=0.25)
+                and math.isclose(scale_new, scale, rel_tol=0.1)
                 and math.isclose(window_new, window_s, rel_tol=0.05)
             )
             if settled:
-                return AutoscaleResult(scale, offset, window_s, points / window_s, vpp, sigma, freq_hz, n_acq)
+                return AutoscaleResult(scale, offset, window_s, points / window_s, vpp, sigma_signal, freq_hz, n_acq)
             stage = "fit"
             scale, offset, window_s = scale_new, offset_new, window_new
         raise MeasurementError(f"autoscale of channel {channel} did not settle in {max_acquisitions} records")
