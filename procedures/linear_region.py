@@ -92,7 +92,7 @@ class LinearRegion(Procedure):
         Param("step_v", float, "V", 0.05, "grid step", minimum=1e-4),
         Param("tol_vpp", float, "V", None, "linearity tolerance, Vpp (absolute); "
               "default: tol_fraction_fs", minimum=0.0),
-        Param("tol_fraction_fs", float, "", 0.01,
+        Param("tol_fraction_fs", float, "", 0.002,
               "linearity tolerance as a fraction of the largest Vpp", minimum=0.0),
         Param("min_points", int, "", 5, "fewest points a region may have", minimum=3),
         *MEASURE_PARAMS,

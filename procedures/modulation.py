@@ -38,7 +38,8 @@ MOD_COLUMNS: tuple[Column, ...] = (
     Column("depth_vpp", "V", "generator amplitude summed onto the rail (0 for static points)"),
     Column("m_envelope", "", "modulation index from the envelope"),
     Column("u_m_envelope", "", "standard uncertainty of m_envelope"),
-    Column("m_spectrum", "", "modulation index from the sidebands at fc +/- fm"),
+    Column("m_spectrum", "", "index from the sidebands at fc +/- fm; reads high when frequency "
+           "pushing adds FM sidebands (index beta = pushing x depth / 2 / fm)"),
     Column("m_predicted", "", "quasi-static prediction from the static sensitivity"),
     Column("envelope_thd_db", "dB", "THD of the recovered envelope (IEEE 1241)"),
     Column("carrier_vpp_v", "V", "carrier Vpp under modulation (2 x mean envelope)"),
@@ -56,9 +57,9 @@ class Modulation(Procedure):
         Param("source", str, "", "linear_region", "earlier step giving the linear region"),
         Param("depths_vpp", list, "V", [0.1, 0.2, 0.4, 0.8, 1.6],
               "generator amplitudes on the rail, Vpp", minimum=1e-4),
-        Param("mod_hz", float, "Hz", 10e3, "modulating frequency", minimum=1.0),
-        Param("mod_cycles", float, "", 4.0, "modulation periods per record", minimum=1.0),
-        Param("samples_per_cycle", float, "", 20.0, "samples per carrier cycle", minimum=4.0),
+        Param("mod_hz", float, "Hz", 2e3, "modulating frequency", minimum=1.0),
+        Param("mod_cycles", float, "", 3.0, "modulation periods per record", minimum=1.0),
+        Param("samples_per_cycle", float, "", 16.0, "samples per carrier cycle", minimum=4.0),
         Param("delta_v", float, "V", 0.1, "offset of the two static points around the centre",
               minimum=1e-3),
         Param("thd_limit_db", float, "dB", -30.0, "envelope THD limit for a clean depth"),
@@ -106,7 +107,7 @@ class Modulation(Procedure):
         def static(rail_v: float) -> Mapping[str, Any]:
             def measure() -> dict[str, Any]:
                 gen_off()
-                tracker.from_below(rail_v, floor_v=rail_v)
+                tracker.from_above(rail_v, top_v=rail_v)
                 row = measure_output(ctx, opts, rail_set_v=rail_v)
                 row.update(kind="static", depth_vpp=0.0)
                 return row
@@ -115,7 +116,9 @@ class Modulation(Procedure):
             return ctx.point(point_key("static", rail_v), measure)
 
         try:
-            rows = [static(centre - delta), static(centre), static(centre + delta)]
+            # measured from the top down, so the running board is only ever lowered
+            hi_row, c_row, lo_row = static(centre + delta), static(centre), static(centre - delta)
+            rows = [lo_row, c_row, hi_row]
             if not all(r["oscillating"] and r.get("vpp_v") for r in rows):
                 raise MeasurementError(f"modulation: the board is not oscillating around {centre:g} V")
             sens = (rows[2]["vpp_v"] - rows[0]["vpp_v"]) / (2 * delta)
@@ -130,7 +133,7 @@ class Modulation(Procedure):
                 m_pred = sens * depth / 2 / vpp_c
 
                 def measure(depth: float = depth, m_pred: float = m_pred) -> dict[str, Any]:
-                    tracker.from_below(centre, floor_v=centre)
+                    tracker.from_above(centre, top_v=centre)  # running: no power cycle
                     peak = vpp_c + abs(sens) * depth  # largest expected Vpp, with margin below
                     setup = ScopeSetup(scale_v_div=1.3 * peak / 8, offset_v=offset,
                                        window_s=window_s, sample_rate_hz=rate_hz)
