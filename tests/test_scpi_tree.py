@@ -290,6 +290,18 @@ def test_headers_and_declaration_errors() -> None:
     assert t.headers() == ["OUTPut#[:STATe]", "*IDN"]
     with pytest.raises(ValueError):
         t.add("OUTPut[:STATe]", set=lambda c: None)  # same header again
+    t.add("[SYSTem]:BEEP[:STATe]", set=lambda c: None)
+    with pytest.raises(ValueError):
+        t.add("BEEPer", set=lambda c: None)  # short form BEEP clashes with the node BEEP
+    with pytest.raises(ValueError):
+        t.add("SYSTem:BEEP", set=lambda c: None)  # one of the expansions declared above
+    t2 = CommandTree()
+    t2.add("SYSTem:BEEP", set=lambda c: None)
+    with pytest.raises(ValueError):
+        t2.add("[SYSTem]:BEEP[:STATe]", set=lambda c: None)  # overlaps in one expansion
+    q = ErrorQueue()
+    t2.execute("BEEP;BEEP:STAT", context=None, errors=q)
+    assert q.codes() == [-113, -113]  # the refused spec left no partial entries
     with pytest.raises(ValueError):
         t.add("OUTPut:STATus", set=lambda c: None)  # STAT clashes with STATe below OUTP
     with pytest.raises(ValueError):

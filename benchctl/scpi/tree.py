@@ -374,8 +374,9 @@ class CommandTree:
             slot_of.append(k if has else -1)
             k += has
         optional_idx = [i for i, (_, opt, _) in enumerate(nodes) if opt]
-        handlers = [(False, set), (True, query)]
-        for is_query, handler in handlers:
+        # Plan every expansion first and check it, so a refused spec leaves no trace.
+        plan: dict[tuple[_Node, bool], tuple[_Entry, tuple[int, ...]]] = {}
+        for is_query, handler in ((False, set), (True, query)):
             if handler is None:
                 continue
             entry = _Entry(text, handler, n_suffixes)
@@ -388,13 +389,13 @@ class CommandTree:
                         continue
                     node = node.child(name)
                     slots.append(slot_of[i])
-                lst = node.entries.setdefault(is_query, [])
-                if any(e.spec == text for e, _ in lst):
-                    # two expansions of one spec meeting at one node (e.g. [A][:A]); keep one
-                    continue
-                if lst:
-                    raise ValueError(f"{spec!r} overlaps {lst[0][0].spec!r}")
-                lst.append((entry, tuple(slots)))
+                existing = node.entries.get(is_query)
+                if existing:
+                    raise ValueError(f"{spec!r} overlaps {existing[0][0].spec!r}")
+                # two expansions of one spec may meet at one node (e.g. [A][:A]); keep one
+                plan.setdefault((node, is_query), (entry, tuple(slots)))
+        for (node, is_query), item in plan.items():
+            node.entries[is_query] = [item]
         self._specs.append(text)
         self._cache.clear()
 
