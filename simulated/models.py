@@ -322,8 +322,8 @@ class OscillatorBase(BoardModel):
         log_u = -np.logaddexp(0.0, -x)
         return np.exp(log_u / p)
 
-    def startup_time_s(self, rail_v: float) -> float:
-        """Closed form of the 90 % point of :meth:`growth_factor`, s."""
+    def startup_time_s(self, rail_v: float, fraction: float = 0.9) -> float:
+        """Closed form of the time :meth:`growth_factor` takes to reach ``fraction``, s."""
         if rail_v < self.startup_v:
             return math.inf
         final = float(self.vpp_at(rail_v))
@@ -331,7 +331,7 @@ class OscillatorBase(BoardModel):
         ratio = min(self.seed_vpp_v / final, 0.999)
         lu0 = p * math.log(ratio)
         l0 = lu0 - math.log(-math.expm1(lu0))
-        lu9 = p * math.log(0.9)
+        lu9 = p * math.log(fraction)
         l9 = lu9 - math.log(-math.expm1(lu9))
         return (l9 - l0) * self.tau_env_s
 

@@ -472,8 +472,19 @@ class BenchModel:
         if target != s.target_v or s.segments[-1].target != target:
             self._truncate_history(t)
             s.retarget(t, target)
-            self.clock.advance_to(s.settled_at())
+            self.clock.advance_to(self._settled_at(t))
         self.cond.notify_all()
+
+    def _settled_at(self, t: float) -> float:
+        """When the supply and a board starting on the way have both settled, s."""
+        done = self.supply.settled_at()
+        osc = self._osc()
+        if osc is not None:
+            self.evolve(done)
+            for tr in self._history:
+                if tr.on and tr.t >= t:
+                    done = max(done, tr.t + osc.startup_time_s(tr.grow_rail_v, 1 - 1e-6))
+        return done
 
     def trip(self) -> None:
         """Trip the over-voltage protection now (fault injection or OVP below output)."""
