@@ -234,3 +234,13 @@ def test_procedure_style_columns(tmp_path):
     assert any("vpp_method" in n for n in sweep.notes)
     mod = plots_mod.draw_step(run, run.steps[1], out)
     assert [d.kind for d in mod.drawn] == ["modulation"]
+
+
+def test_envelope_of_a_sine_burst():
+    # The magnitude of the analytic signal of A*sin(wt) is A (Hilbert transform identity,
+    # e.g. Oppenheim & Schafer, "Discrete-Time Signal Processing", 3rd ed., 12.4; from memory).
+    t = np.arange(4000) / 1e6
+    amp = np.where(t > 2e-3, 0.8, 0.2)
+    env = plots_mod._envelope(amp * np.sin(2 * np.pi * 50e3 * t))
+    np.testing.assert_allclose(env[400:1600], 0.2, rtol=0.03)
+    np.testing.assert_allclose(env[2400:3600], 0.8, rtol=0.03)

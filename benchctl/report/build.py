@@ -87,9 +87,11 @@ def _run_facts(run: RunView) -> list[tuple[str, Any]]:
         ("Board", run.board or None), ("Revision", run.revision or None), ("Serial", run.serial or None),
         ("Status", run.status),
     ]
-    for key, label in (("started", "Started"), ("ended", "Ended"), ("host", "Host"),
-                       ("software_version", "Software version"), ("seed", "Seed"),
-                       ("resumes", "Resumes")):
+    for key, label in (("message", "Outcome"), ("exit_code", "Exit code"), ("started", "Started"),
+                       ("ended", "Ended"), ("host", "Host"), ("software_version", "Software version"),
+                       ("bench", "Bench"), ("seed", "Seed"), ("resumes", "Resumes"),
+                       ("points_measured", "Points measured"), ("points_replayed", "Points replayed"),
+                       ("safe_state", "Bench at the end")):
         if key in meta:
             facts.append((label, meta[key] if not isinstance(meta[key], list | dict) else str(meta[key])))
     return facts

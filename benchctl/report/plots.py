@@ -291,51 +291,87 @@ def _waveform(ctx: _Ctx) -> list[tuple[str, Figure]]:
     frame = ctx.step.frame
     ref_cols = [c for c in frame.columns
                 if any(isinstance(v, str) and v.endswith(".npz") for v in frame[c].tolist())]
-    if not ref_cols:
-        return []
     out = []
     for column in ref_cols:
         ctx.used.add(column)
         refs = [(p, v) for p, v in zip(frame["point"].tolist(), frame[column].tolist(), strict=True)
                 if isinstance(v, str) and v.endswith(".npz")]
-        startup = "start" in ctx.step.name.lower()
-        title = "Start-up envelope" if startup else f"Recorded waveforms ({column})"
-        fig, ax = _xy_axes(title, "time (s)", "V")
-        plotted = 0
+        records = []
         for point, rel in refs[:MAX_WAVEFORMS]:
             try:
-                data = ctx.run.folder.load_waveform(rel)
+                records.append((str(point), ctx.run.folder.load_waveform(rel)))
             except ConfigError as exc:
                 ctx.notes.append(f"waveform of point {point!r}: {exc}")
-                continue
-            plotted += _draw_record(ax, data, str(point), startup=startup)
         if len(refs) > MAX_WAVEFORMS:
             ctx.notes.append(f"{column}: first {MAX_WAVEFORMS} of {len(refs)} waveforms shown")
-        if plotted:
-            ax.legend(fontsize="small")
+        startup = "start" in ctx.step.name.lower()
+        title = "Start-up envelope" if startup else f"Recorded waveforms ({column})"
+        fig = _records_figure(title, records)
+        if fig is not None:
             out.append((title, fig))
     return out
 
 
-def _draw_record(ax, data: dict[str, np.ndarray], point: str, *, startup: bool) -> int:
-    arrays = {k: v for k, v in data.items() if v.ndim == 1 and v.size > 1 and v.dtype.kind in "fiu"}
+def _records_figure(title: str, records: list[tuple[str, dict[str, np.ndarray]]]) -> Figure | None:
+    """Output envelope of each record (first record's raw output faint), rail above it."""
+    series = [(point, _split_record(data)) for point, data in records]
+    series = [(p, s) for p, s in series if s is not None]
+    if not series:
+        return None
+    has_rail = any(s[2] is not None for _, s in series)
+    fig = Figure(figsize=(6.4, 5.0 if has_rail else 4.0), layout="constrained")
+    if has_rail:
+        ax_rail, ax = fig.subplots(2, 1, sharex=True, height_ratios=(1, 3))
+        ax_rail.set_ylabel("rail (V)")
+        ax_rail.grid(True, alpha=0.3)
+        ax_rail.set_title(title)
+    else:
+        ax = fig.add_subplot()
+        ax.set_title(title)
+    for n, (point, (t, name, y, rail)) in enumerate(series):
+        colour = f"C{n % 10}"
+        if n == 0:
+            ax.plot(t, y, lw=0.5, alpha=0.35, color=colour, label=f"{point}: {name}")
+        ax.plot(t, _envelope(y), lw=1.3, color=colour, label=f"{point}: envelope of {name}")
+        if rail is not None and has_rail:
+            ax_rail.plot(t, rail, lw=1.0, color=colour)
+    ax.set_xlabel("time (s)")
+    ax.set_ylabel("V")
+    ax.grid(True, alpha=0.3)
+    ax.legend(fontsize="x-small")
+    return fig
+
+
+def _split_record(data: dict[str, np.ndarray]):
+    """(t_s, output name, output, rail or None) from a stored record, or None."""
+    arrays = {k: np.asarray(v, dtype=float) for k, v in data.items()
+              if v.ndim == 1 and v.size > 1 and v.dtype.kind in "fiu"}
     time = arrays.pop("t_s", None)
-    envelopes = [k for k in arrays if "envelope" in k]
-    raw = [k for k in arrays if k not in envelopes]
-    keys = raw[:1] + envelopes if envelopes else raw[:2]
-    drawn = 0
-    for key in keys:
-        y = arrays[key].astype(float)
-        if time is not None and time.size == y.size:
-            t = time.astype(float)
-        else:
-            dt = float(data["dt_s"]) if "dt_s" in data and data["dt_s"].size == 1 else None
-            t0 = float(data["t0_s"]) if "t0_s" in data and data["t0_s"].size == 1 else 0.0
-            t = t0 + np.arange(y.size) * dt if dt else np.arange(y.size, dtype=float)
-        faint = bool(envelopes) and "envelope" not in key
-        ax.plot(t, y, lw=0.6 if faint else 1.2, alpha=0.45 if faint else 1.0, label=f"{point}: {key}")
-        drawn += 1
-    return drawn
+    rail_key = next((k for k in arrays if "rail" in k), None)
+    rest = [k for k in arrays if k != rail_key and "envelope" not in k]
+    if not rest:
+        return None
+    name = next((k for k in rest if "out" in k), rest[0])
+    y = arrays[name]
+    if time is None or time.size != y.size:
+        dt = float(data["dt_s"]) if "dt_s" in data and np.asarray(data["dt_s"]).size == 1 else None
+        t0 = float(data["t0_s"]) if "t0_s" in data and np.asarray(data["t0_s"]).size == 1 else 0.0
+        time = t0 + np.arange(y.size) * dt if dt else np.arange(y.size, dtype=float)
+    rail = arrays.get(rail_key) if rail_key else None
+    return time, name, y, (rail if rail is not None and rail.size == y.size else None)
+
+
+def _envelope(y: np.ndarray) -> np.ndarray:
+    """Amplitude envelope: magnitude of the analytic signal (Hilbert transform) of y minus
+    its median, smoothed over 1/200 of the record."""
+    from scipy.signal import hilbert
+
+    finite_y = np.nan_to_num(y - np.nanmedian(y))
+    env = np.abs(hilbert(finite_y))
+    width = max(1, y.size // 200)
+    kernel = np.ones(width) / width
+    # divide by the kernel's overlap so that the ends are not pulled down
+    return np.convolve(env, kernel, mode="same") / np.convolve(np.ones_like(env), kernel, mode="same")
 
 
 @plot_kind("other")
