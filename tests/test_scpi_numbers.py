@@ -8,6 +8,7 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from hypothesis.extra import numpy as hnp
 
 from benchctl.errors import ProtocolError
 from benchctl.scpi import (
@@ -15,6 +16,7 @@ from benchctl.scpi import (
     OVERFLOW_VALUE,
     ScpiError,
     format_boolean,
+    format_list,
     format_nr1,
     format_nr2,
     format_nr3,
@@ -373,3 +375,25 @@ def test_suffix_multiplier_property(x: float, prefix: str, unit: str, gap: str, 
         mult = 1e6  # IEEE 488.2 special cases MHZ, MOHM (from memory)
     expected = float(format_nr3(x)) * mult
     assert parse_numeric(text, unit=unit) == pytest.approx(expected, rel=1e-12, abs=1e-300)
+
+
+def test_format_list() -> None:
+    # IEEE 488.2-1992 §8.4.3 (from memory): elements separated by ','.
+    assert format_list([1.0, -0.25]) == "1.000000E+00,-2.500000E-01"
+    assert format_list([]) == ""
+    assert format_list(np.array([[1, 2]]), digits=2) == "1.0E+00,2.0E+00"
+    text = format_list([math.nan, math.inf, -math.inf, 0.0])
+    assert text == "9.910000E+37,9.900000E+37,-9.900000E+37,0.000000E+00"
+    back = parse_response_list(text)
+    assert math.isnan(back[0]) and back[1:] == [math.inf, -math.inf, 0.0]
+
+
+@settings(max_examples=100, deadline=None)
+@given(hnp.arrays(np.float64, st.integers(0, 200), elements=finite))
+def test_format_list_round_trip_against_numpy(values: np.ndarray) -> None:
+    # Reference: numpy's text parser reads our list; both agree within 7 digits.
+    text = format_list(values)
+    ours = np.array(parse_response_list(text))
+    ref = np.fromstring(text, sep=",") if values.size else np.array([])
+    np.testing.assert_array_equal(ours, ref)
+    np.testing.assert_allclose(ours, values, rtol=5e-7, atol=1e-300)

@@ -5,7 +5,7 @@ Server side: :func:`parse_numeric`, :func:`parse_boolean`, :func:`parse_characte
 :class:`~benchctl.scpi.errors.ScpiError` with the code the instrument must queue.
 
 Formatting: :func:`format_nr1`, :func:`format_nr2`, :func:`format_nr3`,
-:func:`format_boolean` make response data.
+:func:`format_list`, :func:`format_boolean`, :func:`format_string` make response data.
 
 Client side: :func:`parse_response_number` and friends read an instrument's reply, or
 raise :class:`~benchctl.errors.ProtocolError` naming the offending text.
@@ -410,6 +410,35 @@ def format_nr3(x: float, *, digits: int = 7) -> str:
     elif math.isinf(value):
         value = math.copysign(OVERFLOW_VALUE, value)
     return f"{value:.{digits - 1}E}"
+
+
+def format_list(values, *, digits: int = 7) -> str:
+    """Format numbers as a comma-separated list of NR3 responses.
+
+    Parameters
+    ----------
+    values : sequence of float or numpy.ndarray
+        The numbers; NaN and infinities become the SCPI sentinels.
+    digits : int
+        Significant digits of each element, as in :func:`format_nr3`.
+
+    Returns
+    -------
+    str
+        E.g. ``"1.000000E+00,-2.500000E-01"``; empty for no values.
+
+    References
+    ----------
+    IEEE 488.2-1992 §8.4.3 <RESPONSE DATA SEPARATOR> ``,`` and §8.7.4 NR3 (from memory);
+    SCPI-1999 Vol. 1 §7.2.1 NaN / infinity values (from memory).
+    """
+    if not 1 <= digits <= 17:
+        raise ValueError(f"{digits=} must be in 1..17")
+    arr = np.asarray(values, dtype=np.float64).ravel()
+    if not np.isfinite(arr).all():
+        arr = np.where(np.isnan(arr), NAN_VALUE, arr)
+        arr = np.where(np.isinf(arr), np.copysign(OVERFLOW_VALUE, arr), arr)
+    return ",".join(map(f"{{:.{digits - 1}E}}".format, arr.tolist()))
 
 
 def format_boolean(b: bool) -> str:
