@@ -244,3 +244,14 @@ def test_envelope_of_a_sine_burst():
     env = plots_mod._envelope(amp * np.sin(2 * np.pi * 50e3 * t))
     np.testing.assert_allclose(env[400:1600], 0.2, rtol=0.03)
     np.testing.assert_allclose(env[2400:3600], 0.8, rtol=0.03)
+
+
+def test_rebuild_removes_only_its_own_old_plots(tmp_path):
+    rf = RunFolder.create(tmp_path / "run", plan_text="", bench_text="", meta={})
+    rf.append_point(0, "s", {"point": "a", "label": "x"}, ["label"])
+    out = tmp_path / "run" / "report"
+    out.mkdir()
+    (out / "03-gone-other-7.png").write_bytes(PNG_MAGIC)  # left by an earlier report
+    (out / "keep.png").write_bytes(PNG_MAGIC)  # someone else's file
+    build_report(rf.path)
+    assert not (out / "03-gone-other-7.png").exists() and (out / "keep.png").exists()

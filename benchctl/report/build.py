@@ -3,12 +3,13 @@
 from __future__ import annotations
 
 import datetime as _dt
+import re
 from pathlib import Path
 from typing import Any
 
 from benchctl import __version__
 from benchctl.report.formatting import fmt, h, md, md_table
-from benchctl.report.plots import StepPlots, draw_step
+from benchctl.report.plots import KINDS, StepPlots, draw_step
 from benchctl.report.runview import RunView, load_run
 from benchctl.store.atomic import write_text_atomic
 
@@ -62,11 +63,20 @@ def build_report(run_dir: str | Path, *, out_dir: str | Path | None = None) -> P
     run = load_run(run_dir)
     out = Path(out_dir) if out_dir is not None else run.path / "report"
     out.mkdir(parents=True, exist_ok=True)
+    _remove_old_plots(out)
     plotted = [draw_step(run, step, out) for step in run.steps]
     stamp = _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds").replace("+00:00", "Z")
     write_text_atomic(out / "index.html", _html(run, plotted, stamp))
     write_text_atomic(out / "summary.md", _markdown(run, plotted, stamp))
     return out / "index.html"
+
+
+def _remove_old_plots(out: Path) -> None:
+    """Delete plots an earlier report left (only files named the way this module names them)."""
+    pattern = re.compile(rf"[0-9]{{2,}}-[A-Za-z0-9_-]+-(?:{'|'.join(map(re.escape, KINDS))})(?:-[0-9]+)?\.png")
+    for entry in out.iterdir():
+        if entry.is_file() and pattern.fullmatch(entry.name):
+            entry.unlink()
 
 
 def parameter_rows(parameters: dict[str, dict[str, Any]]) -> list[list[Any]]:

@@ -29,7 +29,7 @@ from benchctl.errors import ConfigError
 from benchctl.report.formatting import fmt
 from benchctl.report.runview import X_CANDIDATES, RunView, StepData, direction_column, finite
 
-MAX_GENERIC_PLOTS = 8
+MAX_GENERIC_PLOTS = 8  # panels in the one "other columns" figure of a step
 MAX_WAVEFORMS = 4
 _UNC_MARK = re.compile(r"(^u_)|(_(u|unc|std|sigma)(_|$))")
 
@@ -172,6 +172,37 @@ def _series_plot(ctx: _Ctx, columns: list[str], title: str, *, shade: bool = Fal
         _shade_linear(ctx, ax)
     if len(columns) > 1 or shade:
         ax.legend(fontsize="small")
+    return fig
+
+
+def _panels(ctx: _Ctx, columns: list[str], title: str) -> Figure:
+    """One small panel per column, two panels a row, sharing the x axis."""
+    frame = ctx.step.frame
+    x, xlabel = _xvalues(ctx)
+    rows = (len(columns) + 1) // 2
+    fig = Figure(figsize=(7.2, 1.9 * rows + 0.6), layout="constrained")
+    axes = fig.subplots(rows, 2, sharex=True, squeeze=False).ravel()
+    fig.suptitle(title)
+    style = "o" if direction_column(frame.columns) else "o-"
+    for ax, column in zip(axes, columns, strict=False):
+        y = _numeric(frame[column])
+        unc = _uncertainty_column(frame, column)
+        yerr = _numeric(frame[unc]) if unc else None
+        if yerr is not None:
+            ax.errorbar(x, y, yerr=np.nan_to_num(yerr), fmt=style, ms=2, lw=0.8, capsize=1.5)
+            ctx.used.add(unc)
+        else:
+            ax.plot(x, y, style, ms=2, lw=0.8)
+        ax.set_title(_unit_label(column), fontsize="small")
+        ax.tick_params(labelsize="x-small")
+        ax.grid(True, alpha=0.3)
+        ctx.used.add(column)
+    for ax in axes[len(columns):]:
+        ax.set_visible(False)
+    last_row = [axes[i] for i in range(len(columns)) if i + 2 >= len(columns)]
+    for ax in last_row:  # the lowest visible panel of each column carries the x axis
+        ax.tick_params(labelbottom=True)
+        ax.set_xlabel(xlabel, fontsize="small")
     return fig
 
 
@@ -386,9 +417,10 @@ def _other(ctx: _Ctx) -> list[tuple[str, Figure]]:
                          + ", ".join(f"{c} = {fmt(_numeric(frame[c])[0])}" for c in constant))
         numeric = [c for c in numeric if c not in constant]
     out = []
-    for column in numeric[:MAX_GENERIC_PLOTS]:
-        label = f"{column} vs rail" if ctx.x else f"{column} by point"
-        out.append((label, _series_plot(ctx, [column], label)))
+    shown = numeric[:MAX_GENERIC_PLOTS]
+    if shown:
+        title = "Other columns vs rail" if ctx.x else "Other columns by point"
+        out.append((f"{title}: {', '.join(shown)}", _panels(ctx, shown, title)))
     if len(numeric) > MAX_GENERIC_PLOTS:
         ctx.notes.append(f"not plotted (more than {MAX_GENERIC_PLOTS} other columns): "
                          + ", ".join(numeric[MAX_GENERIC_PLOTS:]))
