@@ -125,3 +125,14 @@ def test_detector_on_a_flat_record():
     assert not det.oscillating and "flat" in det.reason
     with pytest.raises(ValueError, match="band_hz"):
         detect_oscillation(np.zeros(256), fs_hz=FS_HZ, band_hz=(5.0, 1.0))
+
+
+@pytest.mark.parametrize("n", [64, 1001])
+def test_closed_form_gram_matrix_equals_explicit_products(n):
+    # Dirichlet-kernel closed forms against B @ B.T of the explicit basis (numpy)
+    from benchctl.analysis.spectrum import _gram, _lines_basis
+
+    freqs = [0.01237, 0.02474, 0.25, 0.4, 0.4999]
+    basis = _lines_basis(freqs, n)
+    np.testing.assert_allclose(_gram([2 * np.pi * f for f in freqs], n), basis @ basis.T,
+                               rtol=0, atol=1e-9 * n)

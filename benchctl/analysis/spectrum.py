@@ -19,7 +19,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from benchctl.analysis._common import as_record, check_positive, db10, db20
-from benchctl.analysis.waveform import _cos_sin, _hann, fit_sine
+from benchctl.analysis.waveform import _cos_sin, _dirichlet, _dot, _hann, fit_sine
 from benchctl.errors import MeasurementError
 
 __all__ = ["Detection", "HarmonicAnalysis", "detect_oscillation", "harmonics"]
@@ -116,6 +116,40 @@ def _aliased_hz(freq_hz: float, fs_hz: float) -> float:
     return fs_hz - f if f > 0.5 * fs_hz else f
 
 
+def _gram(w_rad: list[float], n: int) -> NDArray[np.float64]:
+    """B^T B of the centred basis [1, cos w_1 t, sin w_1 t, ...] in closed form.
+
+    With t centred, every sum of an odd function vanishes and the rest are Dirichlet
+    kernels: sum cos(a t) cos(b t) = (D(a - b) + D(a + b)) / 2, sum sin sin = (D(a - b) -
+    D(a + b)) / 2, sum cos = D(a).
+    """
+    m = 1 + 2 * len(w_rad)
+    h = np.zeros((m, m))
+    h[0, 0] = float(n)
+    for i, wi in enumerate(w_rad):
+        h[0, 1 + 2 * i] = h[1 + 2 * i, 0] = _dirichlet(wi, n)
+        for j, wj in enumerate(w_rad[: i + 1]):
+            dm = _dirichlet(wi - wj, n)
+            dp = _dirichlet(wi + wj, n)
+            h[1 + 2 * i, 1 + 2 * j] = h[1 + 2 * j, 1 + 2 * i] = 0.5 * (dm + dp)
+            h[2 + 2 * i, 2 + 2 * j] = h[2 + 2 * j, 2 + 2 * i] = 0.5 * (dm - dp)
+    return h
+
+
+def _lines_basis(freqs_cycles: list[float], n: int) -> NDArray[np.float64]:
+    """The basis rows [1, cos, sin, ...] at the given frequencies (centred time)."""
+    basis = np.empty((1 + 2 * len(freqs_cycles), n))
+    basis[0] = 1.0
+    for j, f in enumerate(freqs_cycles):
+        basis[1 + 2 * j], basis[2 + 2 * j] = _cos_sin(2.0 * math.pi * f, n)
+    return basis
+
+
+def _project(basis: NDArray[np.float64], v: NDArray[np.float64]) -> NDArray[np.float64]:
+    """B^T v in numpy's own loop (no BLAS threads; see waveform._dot)."""
+    return np.einsum("ij,j->i", basis, v)
+
+
 def _harmonic_lsq(
     y: NDArray[np.float64], freqs_cycles: list[float]
 ) -> tuple[NDArray[np.float64], NDArray[np.float64], float]:
@@ -125,14 +159,13 @@ def _harmonic_lsq(
     (average diagonal of (B^T B)^-1 for the cos/sin columns).
     """
     n = y.size
-    cols = [np.ones(n)]
-    for f in freqs_cycles:
-        co, si = _cos_sin(2.0 * math.pi * f, n)
-        cols.extend((co, si))
-    basis = np.vstack(cols)
-    h = basis @ basis.T
-    coef = np.linalg.solve(h, basis @ y)
-    resid = y - coef @ basis
+    basis = _lines_basis(freqs_cycles, n)
+    h = _gram([2.0 * math.pi * f for f in freqs_cycles], n)
+    try:
+        coef = np.linalg.solve(h, _project(basis, y))
+    except np.linalg.LinAlgError as exc:
+        raise MeasurementError("spectral lines too close to separate in this record") from exc
+    resid = y - np.einsum("i,ij->j", coef, basis)
     amps = np.hypot(coef[1::2], coef[2::2])
     var_factor = float(np.mean(np.diag(np.linalg.inv(h))[1:]))
     return amps, resid, var_factor
@@ -174,40 +207,39 @@ def _refine_fundamental(y: NDArray[np.float64], f1_cycles: float, n_harm: int) -
     n = y.size
     t = np.arange(n, dtype=np.float64)
     t -= 0.5 * (n - 1)
+    yy = _dot(y, y)
     f = f1_cycles
     sse_old = math.inf
     for _ in range(10):  # bounded: converges in 2-4 steps from the 4-parameter start
         freqs, _, _, slope = _plan(f, n_harm, n)
-        cols = [np.ones(n)]
-        for fk in freqs:
-            co, si = _cos_sin(2.0 * math.pi * fk, n)
-            cols.extend((co, si))
-        basis = np.vstack(cols)
-        h = basis @ basis.T
-        coef = np.linalg.solve(h, basis @ y)
-        resid = y - coef @ basis
-        sse = float(resid @ resid)
-        if sse > sse_old:
+        basis = _lines_basis(freqs, n)
+        h = _gram([2.0 * math.pi * fk for fk in freqs], n)
+        g = _project(basis, y)
+        coef = np.linalg.solve(h, g)
+        sse = max(yy - float(coef @ g), 0.0)  # projection identity
+        if sse > sse_old + 1e-13 * yy:
             break
         sse_old = sse
-        # d model / d f1 = sum_k dfk/df1 * 2 pi t (-a_k sin + b_k cos)
-        d = np.zeros(n)
+        # d model / d f1 = 2 pi t sum_k dfk/df1 (b_k cos - a_k sin)
+        v = np.zeros(basis.shape[0])
         for j, dk in enumerate(slope):
-            a, b = coef[1 + 2 * j], coef[2 + 2 * j]
-            d += dk * (b * basis[1 + 2 * j] - a * basis[2 + 2 * j])
-        d *= 2.0 * math.pi * t
-        # project d off the linear columns (variable projection Gauss-Newton step)
-        d_perp = d - (np.linalg.solve(h, basis @ d) @ basis)
-        dd = float(d_perp @ d_perp)
+            v[1 + 2 * j] = dk * coef[2 + 2 * j]
+            v[2 + 2 * j] = -dk * coef[1 + 2 * j]
+        d = np.einsum("i,ij->j", v, basis)
+        d *= t
+        d *= 2.0 * math.pi
+        bd = _project(basis, d)
+        # variable projection Gauss-Newton step: d projected off the linear columns;
+        # the residual is orthogonal to them, so d_perp . r = d . r
+        dd = _dot(d, d) - float(bd @ np.linalg.solve(h, bd))
         if dd <= 0.0:
             break
-        step = float(d_perp @ resid) / dd
-        f_new = f + step
+        dr = _dot(d, y) - float(coef @ bd)
+        step = dr / dd
         u_f = math.sqrt(sse / max(n - basis.shape[0] - 1, 1) / dd)
+        f += step
         if abs(step) <= 1e-4 * u_f or abs(step) * n <= 1e-12:
-            f = f_new
             break
-        f = f_new
     return f
 
 
