@@ -1,0 +1,184 @@
+"""End to end: the procedures drive the simulated bench through the drivers, pyvisa-py and
+real 127.0.0.1 sockets, and what they report is checked against the simulated board's
+analytic ground truth (``sim.truth``). Each tolerance is explained beside its check.
+"""
+
+from __future__ import annotations
+
+import math
+
+import pytest
+from test_procedures_replay import DictContext, Exploding, _params
+
+from benchctl.drivers.bench import load_bench_text, open_bench
+from benchctl.simulated import SimulatedBench
+
+
+class StepClock:
+    """Real monotonic time, no sleeping: the accelerated bench models elapsed time itself."""
+
+    def __init__(self):
+        import time
+
+        self._mono = time.monotonic
+
+    def monotonic(self):
+        return self._mono()
+
+    def sleep(self, seconds):
+        pass
+
+
+@pytest.fixture
+def rig(request):
+    """``rig(board, seed, serial)`` -> (sim, bench); everything is closed after the test."""
+    opened = []
+
+    def make(board="beacon", seed=1, serial=None):
+        kw = {"board": board, "seed": seed}
+        if serial:
+            kw["serial"] = serial
+        sim = SimulatedBench(**kw).__enter__()
+        opened.append(sim)
+        bench = open_bench(load_bench_text(sim.bench_toml()), max_voltage_v=6.0)
+        opened.append(bench)
+        return sim, bench
+
+    yield make
+    for thing in reversed(opened):
+        thing.__exit__(None, None, None)
+
+
+def _run(bench, name, earlier=None, **given):
+    ctx = DictContext(bench, earlier=earlier)
+    ctx.clock = StepClock()
+    proc, params = _params(name, **given)
+    try:
+        results = {r.name: r for r in proc.run(ctx, params)}
+    finally:
+        bench.generator.output(False)
+        bench.supply.output(False)
+    return results, ctx, params
+
+
+def _acquisitions(sim):
+    return sum(1 for c in sim.command_log("scope") if c.upper().startswith("INIT"))
+
+
+UNITS = [("beacon", 1, "B0001"), ("beacon", 2, "B0002"), ("replay", 3, None)]
+
+
+@pytest.mark.parametrize(("board", "seed", "serial"), UNITS)
+def test_sweep_then_bisection_find_dropout_and_startup(rig, board, seed, serial):
+    sim, bench = rig(board, seed, serial)
+    truth = sim.truth
+    sweep, sctx, _ = _run(bench, "rail_sweep", start_v=2.2, stop_v=5.4, step_v=0.2, records=1)
+    # Coarse brackets from the two branches hold the truth (a bracket is two grid points
+    # apart, so the truth must lie between them; 1 mV allows for the supply's settling).
+    for name in ("dropout_v", "startup_v"):
+        r = sweep[name]
+        assert r.low - 1e-3 <= getattr(truth, name) <= r.high + 1e-3, (name, r)
+    # Vpp at the nominal rail: linear interpolation between 0.2 V grid points in the
+    # linear region is exact for a straight line; 0.5 % covers the fit noise (u ~ 0.2 mV)
+    # and the soft compression of the model near the top of the region.
+    assert sweep["vpp_at_nominal_v"].value == pytest.approx(truth.vpp_at(5.0), rel=5e-3)
+    assert sweep["current_at_nominal_a"].value == pytest.approx(truth.current_at(5.0, True),
+                                                                rel=0.01)
+
+    earlier = {"rail_sweep": (sweep, list(sctx.rows.values()))}
+    n0 = _acquisitions(sim)
+    got, ctx, params = _run(bench, "dropout_startup", earlier=earlier, search="dropout")
+    used = _acquisitions(sim) - n0
+    d = got["dropout_v"]
+    # Bisection to 5 mV: the truth lies in the final bracket; 1 mV for settling.
+    assert d.high - d.low <= 0.005 + 1e-9
+    assert d.low - 1e-3 <= truth.dropout_v <= d.high + 1e-3
+    # Acquisition budget of the threshold search (the scope set-up comes from the sweep:
+    # no extra acquisition): log2(range / resolution) + 4.
+    lo, hi = sweep["dropout_v"].low - 0.05, sweep["dropout_v"].high + 0.05
+    assert used <= math.log2((hi - lo) / 0.005) + 4, used
+
+    got, ctx, params = _run(bench, "dropout_startup", earlier=earlier, search="startup")
+    s = got["startup_v"]
+    assert s.high - s.low <= 0.005 + 1e-9
+    assert s.low - 1e-3 <= truth.startup_v <= s.high + 1e-3
+
+
+def test_threshold_search_replays_from_its_rows_without_the_bench(rig):
+    sim, bench = rig("beacon", 4, "B0004")
+    first, ctx, params = _run(bench, "dropout_startup", lo_v=2.4, hi_v=3.3, source="")
+    assert first["hysteresis_v"].low <= sim.truth.startup_v - sim.truth.dropout_v \
+        <= first["hysteresis_v"].high + 2e-3
+    ghost = type("Ghost", (), {})()
+    ghost.supply = ghost.scope = ghost.generator = Exploding()
+    ghost.wiring = bench.wiring
+    replay = DictContext(ghost, recorded=ctx.rows)
+    proc, _ = _params("dropout_startup")
+    again = {r.name: r for r in proc.run(replay, params)}
+    assert replay.measured == 0 and list(replay.rows) == list(ctx.rows)
+    assert again == first
+
+
+# Region-end tolerances per board (V). beacon: the model leaves its line smoothly
+# (quadratic onset below, tanh compression above), so a deviation of 0.2 % of full scale is
+# reached only some way past the true ends -- from the model's laws, onset deviation
+# 0.81 V^-1 (dV)^2 and compression 0.6 (dV - 0.8 tanh(dV / 0.8)): 0.15 V below, 0.35 V above.
+# replay: its true region is where the table's segment slopes stay within 10 % of their
+# median, a looser rule than a 0.2 %-of-full-scale line fit, known only to one table row
+# (0.2 V): 0.25 V at both ends.
+REGION_TOL = {"beacon": (0.15, 0.35), "replay": (0.25, 0.25)}
+
+
+@pytest.mark.parametrize(("board", "seed", "serial"), UNITS)
+def test_linear_region_and_pushing_match_the_board(rig, board, seed, serial):
+    sim, bench = rig(board, seed, serial)
+    lo_tol, hi_tol = REGION_TOL[board]
+    truth = sim.truth
+    reg, ctx, _ = _run(bench, "linear_region", start_v=3.1, stop_v=5.9, step_v=0.1, records=1)
+    slope = reg["supply_sensitivity_vpp_per_v"]
+    # Supply sensitivity: the region's line fit against the true slope; 4 standard
+    # uncertainties plus 1 % for the model's smooth joins at the region ends, which a
+    # 0.2 %-of-full-scale tolerance lets into the fitted window.
+    assert abs(slope.value - truth.slope_vpp_per_v) <= 4 * slope.uncertainty \
+        + 0.01 * truth.slope_vpp_per_v
+    assert abs(reg["linear_lo_v"].value - truth.linear_lo_v) <= lo_tol
+    assert abs(reg["linear_hi_v"].value - truth.linear_hi_v) <= hi_tol
+    assert reg["linearity_r2"].value > 0.999
+
+    earlier = {"linear_region": (reg, list(ctx.rows.values()))}
+    push, _, _ = _run(bench, "pushing", earlier=earlier)
+    p = push["pushing_hz_per_v"]
+    # Pushing: weighted line fit of frequency in the region; 4 u + 1 % (the table board
+    # interpolates its frequency column piecewise, so its slope varies a little).
+    assert abs(p.value - truth.pushing_hz_per_v) <= 4 * p.uncertainty \
+        + 0.01 * abs(truth.pushing_hz_per_v)
+    i_slope = truth.current_at(5.0, True) - truth.current_at(4.0, True)
+    # Current: readback resolution 10 uA and noise 20 uA over ~25 points: 5 %.
+    assert push["current_slope_a_per_v"].value == pytest.approx(i_slope, rel=0.05)
+
+
+def test_modulation_index_matches_the_prediction(rig):
+    sim, bench = rig("beacon", 5, "B0005")
+    got, ctx, params = _run(bench, "modulation", centre_v=4.4)
+    # Measured / predicted at the smallest depth: the board's envelope bandwidth (first
+    # order, 50 kHz in the model) attenuates a 2 kHz tone by 1 - 1/sqrt(1 + (2/50)^2)
+    # = 0.08 %; the envelope estimate's noise at m ~ 0.02 is ~1 %: 3 %.
+    assert got["modulation_ratio"].value == pytest.approx(1.0, abs=0.03)
+    for row in (r for r in ctx.rows.values() if r["kind"] == "depth"):
+        want = sim.truth.modulation_index(4.4, row["depth_vpp"])
+        # the simulated board's own quasi-static prediction, same 3 % (relative) or 1e-3
+        assert row["m_envelope"] == pytest.approx(want, rel=0.03, abs=1e-3)
+    assert got["max_clean_depth_vpp"].value == max(params["depths_vpp"])
+    assert sim.generator_state()["output_on"] is False
+
+
+def test_startup_time_matches_the_board(rig):
+    sim, bench = rig("beacon", 6, "B0006")
+    got, ctx, _ = _run(bench, "startup_time", rail_v=5.0)
+    want = sim.truth.startup_time_s(5.0)
+    # The truth counts from an ideal step; the measurement from the rail's 50 % crossing.
+    # The supply slews at 20 V/ms, so the rail passes start-up (~3.0 V) (3.0 - 2.5) / 20e3
+    # = 25 us after its 50 % point: allow 25 us plus 3 % for the envelope smoothing.
+    assert abs(got["startup_time_s"].value - want) <= 25e-6 + 0.03 * want
+    shots = [r for r in ctx.rows.values() if r["kind"] == "shot"]
+    assert shots and all(r["settled"] for r in shots)
