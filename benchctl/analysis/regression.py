@@ -208,73 +208,62 @@ def linear_fit(
     )
 
 
-def _window_sse(x: NDArray, y: NDArray, w: NDArray) -> tuple[NDArray, ...]:
-    """Weighted LS line of every window [i, j] from prefix sums (O(1) per window).
-
-    Returns matrices indexed [i, j] (valid for j > i): slope, intercept, weighted SSE and
-    weight sum.
-    """
-    def prefix(v: NDArray) -> NDArray:
-        return np.concatenate(([0.0], np.cumsum(v)))
-
-    s0, sx, sy = prefix(w), prefix(w * x), prefix(w * y)
-    sxx, sxy, syy = prefix(w * x * x), prefix(w * x * y), prefix(w * y * y)
-
-    def win(p: NDArray) -> NDArray:
-        return p[None, 1:] - p[:-1, None]  # [i, j] -> sum over i..j
-
-    W, X, Y = win(s0), win(sx), win(sy)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        cxx = win(sxx) - X * X / W
-        cxy = win(sxy) - X * Y / W
-        cyy = win(syy) - Y * Y / W
-        slope = cxy / cxx
-        icpt = (Y - slope * X) / W
-        sse = np.maximum(cyy - slope * cxy, 0.0)
-    return slope, icpt, sse, W
+def _prefix(v: NDArray) -> NDArray:
+    return np.concatenate(([0.0], np.cumsum(v)))
 
 
 def _search(
     x: NDArray, y: NDArray, w: NDArray, tol_v: float, min_points: int
 ) -> tuple[int, int, float] | None:
-    """Widest window (i, j inclusive) whose LS line leaves every |residual| <= tol_v."""
+    """Widest window (i, j inclusive) whose LS line leaves every |residual| <= tol_v.
+
+    Weighted least-squares line of every window of a given width from prefix sums, O(1)
+    per window; widths are taken from the widest down, so only the widths above the
+    answer are ever formed.
+    """
     n = x.size
-    slope, icpt, sse, wsum = _window_sse(x, y, w)
+    s0, sx, sy = _prefix(w), _prefix(w * x), _prefix(w * y)
+    sxx, sxy, syy = _prefix(w * x * x), _prefix(w * x * y), _prefix(w * y * y)
     tol2 = tol_v * tol_v
     w_min = float(w.min())
-    ii, jj = np.indices((n, n))
-    length = jj - ii + 1
-    valid = length >= min_points
-    # necessary: weighted mean square <= tol^2 ; sufficient: SSE / min(w) <= tol^2
-    with np.errstate(invalid="ignore"):
-        maybe = valid & (sse <= tol2 * wsum * (1.0 + 1e-12))
-        sure = valid & (sse / w_min <= tol2 * (1.0 - 1e-12))
     for L in range(n, min_points - 1, -1):
-        starts = np.arange(0, n - L + 1)
-        ends = starts + L - 1
-        cand = starts[maybe[starts, ends]]
+        i = np.arange(0, n - L + 1)
+        k = i + L
+        W = s0[k] - s0[i]
+        X = sx[k] - sx[i]
+        Y = sy[k] - sy[i]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            cxx = (sxx[k] - sxx[i]) - X * X / W
+            cxy = (sxy[k] - sxy[i]) - X * Y / W
+            cyy = (syy[k] - syy[i]) - Y * Y / W
+            slope = cxy / cxx
+            icpt = (Y - slope * X) / W
+            sse = np.maximum(cyy - slope * cxy, 0.0)
+            # necessary: weighted mean square <= tol^2; sufficient: SSE / min(w) <= tol^2
+            maybe = sse <= tol2 * W * (1.0 + 1e-12)
+            sure = sse / w_min <= tol2 * (1.0 - 1e-12)
+        cand = i[maybe]
         if cand.size == 0:
             continue
+        slope_c, icpt_c, sure_c = slope[maybe], icpt[maybe], sure[maybe]
         if L > 64 and cand.size > 8:
             # cheap first pass on 33 spread points (ends included): a window failing there
             # fails; only the survivors get the full check
             probe = np.unique(np.linspace(0, L - 1, 33).astype(np.intp))
             cols = cand[:, None] + probe[None, :]
-            e = cand + L - 1
-            dev_p = np.abs(y[cols] - (slope[cand, e][:, None] * x[cols] + icpt[cand, e][:, None]))
-            keep = (dev_p.max(axis=1) <= tol_v) | sure[cand, e]
-            cand = cand[keep]
+            dev_p = np.abs(y[cols] - (slope_c[:, None] * x[cols] + icpt_c[:, None]))
+            keep = (dev_p.max(axis=1) <= tol_v) | sure_c
+            cand, slope_c, icpt_c, sure_c = cand[keep], slope_c[keep], icpt_c[keep], sure_c[keep]
             if cand.size == 0:
                 continue
-        e = cand + L - 1
         xs = sliding_window_view(x, L)[cand]
         ys = sliding_window_view(y, L)[cand]
-        dev = np.abs(ys - (slope[cand, e][:, None] * xs + icpt[cand, e][:, None]))
+        dev = np.abs(ys - (slope_c[:, None] * xs + icpt_c[:, None]))
         max_dev = dev.max(axis=1)
-        ok = (max_dev <= tol_v) | sure[cand, e]
+        ok = (max_dev <= tol_v) | sure_c
         if np.any(ok):
-            k = int(np.argmin(np.where(ok, max_dev, np.inf)))
-            return int(cand[k]), int(cand[k] + L - 1), float(max_dev[k])
+            best = int(np.argmin(np.where(ok, max_dev, np.inf)))
+            return int(cand[best]), int(cand[best] + L - 1), float(max_dev[best])
     return None
 
 
