@@ -317,6 +317,15 @@ def linear_region(
     MeasurementError
         No window of ``min_points`` points meets the tolerance.
 
+    Notes
+    -----
+    The range-end intervals come from repeating the search on ``n_mc`` copies of the data
+    with each Vpp drawn from N(Vpp_i, u_i^2) (JCGM 101), then taking the 2.5 and 97.5 %
+    points of the ends found, widened to the neighbouring rail points. The draws add their
+    dispersion to the scatter already in the data, so the intervals lean wide
+    (conservative). Cost: ``n_mc`` searches, e.g. about 0.15 s for 41 points and 1 s for
+    400 points at the default 200; the search alone takes milliseconds.
+
     References
     ----------
     .. [3] IEEE Std 1241-2010 (INL against the best-fit line).
