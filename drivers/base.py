@@ -34,7 +34,7 @@ from benchctl.errors import (
     ProtocolError,
 )
 
-from .dialect import OPERATIONS, Dialect, Identity
+from .dialect import OPERATIONS, Dialect, Identity, Operation
 from .transport import Transport
 
 __all__ = ["DRIVERS", "Identity", "Instrument", "register_driver"]
@@ -140,14 +140,22 @@ class Instrument:
         if self.strict:
             self._unchecked.append(text)
             self.check_errors()
-        return operation.parse(reply)
+        return self._parse(operation, reply)
+
+    def _parse(self, operation: Operation, reply: str) -> Any:
+        try:
+            return operation.parse(reply)
+        except ProtocolError as exc:
+            self.transport.mark_suspect()  # a reply that does not fit may be a late one
+            exc.add_note(f"reply to {operation.name} from {self.resource}")
+            raise
 
     def _write(self, text: str) -> None:
         if self.strict:
             if self.dialect.compound:
                 joiner = ";" if self._error_text.startswith("*") else ";:"
                 reply = self.transport.query(f"{text}{joiner}{self._error_text}")
-                self._raise_if_error(self._error_op.parse(reply), text, more=True)
+                self._raise_if_error(self._parse(self._error_op, reply), text, more=True)
             else:
                 self.transport.write(text)
                 self._unchecked.append(text)
@@ -167,7 +175,7 @@ class Instrument:
         first: tuple[int, str] | None = None
         count = 0
         for _ in range(MAX_ERRORS_PER_CHECK):
-            code, message = self._error_op.parse(self.transport.query(self._error_text))
+            code, message = self._parse(self._error_op, self.transport.query(self._error_text))
             if code == 0:
                 break
             count += 1

@@ -303,7 +303,7 @@ class Scope(Instrument):
             if self.dialect.compound and not self.strict:
                 joiner = ";" if opc.template.startswith("*") else ";:"
                 self._unchecked.append(arm)
-                opc.parse(self.transport.query(f"{arm}{joiner}{opc.render()}"))
+                self._parse(opc, self.transport.query(f"{arm}{joiner}{opc.render()}"))
             else:
                 self.command("arm")
                 self.ask("opc")

@@ -327,6 +327,10 @@ class Transport:
         except OSError:
             pass
 
+    def mark_suspect(self) -> None:
+        """A reply did not fit its question (maybe a late one): drain before the next exchange."""
+        self._dirty = True
+
     def _resync(self) -> None:
         """After a timeout a late reply may still come: drop whatever arrived meanwhile."""
         self._dirty = False

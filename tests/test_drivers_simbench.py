@@ -1,0 +1,302 @@
+"""Every driver operation against the simulated bench, over pyvisa-py sockets on 127.0.0.1,
+and every fault of the simulated bench surfacing as the right typed exception in time.
+
+Expected values come from the simulated board's analytic truth (``sim.truth``), the
+simulated instruments' state (``sim.supply_state()``...) and the command log, so the tests
+check what went over the wire and what the driver made of the answer.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+
+import numpy as np
+import pytest
+
+from benchctl.drivers import load_bench_text, open_bench
+from benchctl.drivers.scope import dominant_frequency
+from benchctl.errors import (
+    ConnectionLost,
+    InstrumentError,
+    InstrumentTimeout,
+    ProtocolError,
+    SafetyError,
+)
+
+
+class FakeClock:
+    """Injected clock: sleeping advances it, nothing waits."""
+
+    def __init__(self) -> None:
+        self.now_s = 0.0
+        self.sleeps: list[float] = []
+
+    def __call__(self) -> float:
+        return self.now_s
+
+    def sleep(self, seconds: float) -> None:
+        self.sleeps.append(seconds)
+        self.now_s += seconds
+
+
+@pytest.fixture(params=["scpi1999", "simbench"])
+def bench(sim_bench, request):
+    cfg = load_bench_text(sim_bench.bench_toml(dialect=request.param))
+    with open_bench(cfg, max_voltage_v=6.0) as b:
+        yield sim_bench, b
+
+
+@pytest.fixture
+def fast(sim_bench):
+    cfg = load_bench_text(sim_bench.bench_toml(dialect="simbench"))
+    with open_bench(cfg, max_voltage_v=6.0) as b:
+        for inst in b.instruments.values():
+            inst.transport.timeout_s = 0.3
+        yield sim_bench, b
+
+
+def _power_up(b, rail_v: float = 5.0) -> None:
+    b.supply.set_current_limit(0.1)
+    b.supply.set_ovp(6.5)
+    b.supply.set_voltage(rail_v)
+    b.supply.output(True)
+    b.supply.wait_settled(rail_v, tol_v=0.02, timeout_s=2.0)
+
+
+def test_open_bench_identifies_every_role(bench) -> None:
+    sim, b = bench
+    assert b.idn["supply"].model == "SIM-DC-SUPPLY"
+    assert b.idn["scope"].maker == "benchctl"
+    for role in ("supply", "generator", "scope"):
+        assert sim.command_log(role)[0] == "*IDN?"  # the probe comes first
+
+
+def test_supply_operations(bench) -> None:
+    sim, b = bench
+    s = b.supply
+    s.set_current_limit(0.1)
+    s.set_ovp(6.5)
+    s.set_voltage(5.0)
+    s.output(True)
+    settled = s.wait_settled(5.0, tol_v=0.02, timeout_s=2.0)
+    state = sim.supply_state()
+    assert (state["setpoint_v"], state["current_limit_a"], state["ovp_v"], state["output_on"]) == (5.0, 0.1, 6.5, True)
+    assert settled == pytest.approx(state["output_v"], abs=0.02)
+    assert s.get_voltage() == 5.0 and s.get_current_limit() == 0.1 and s.get_ovp() == 6.5
+    assert s.is_output_on() is True and s.protection_tripped() is False
+    assert s.measure_voltage() == pytest.approx(state["output_v"], abs=0.02)
+    assert s.measure_current() == pytest.approx(sim.supply_state()["current_a"], rel=0.05, abs=1e-4)
+    s.output(False)
+    assert sim.supply_state()["output_on"] is False
+
+
+def test_supply_refuses_unsafe_setpoints_before_sending(bench) -> None:
+    sim, b = bench
+    n = len(sim.command_log("supply"))
+    for bad_v in (6.0001, 100.0, -0.1, math.nan, math.inf):
+        with pytest.raises(SafetyError):
+            b.supply.set_voltage(bad_v)
+    with pytest.raises(SafetyError):
+        b.supply.ramp_to(6.5, rate_v_per_s=5.0)
+    with pytest.raises(SafetyError):
+        b.supply.set_current_limit(0.0)
+    assert len(sim.command_log("supply")) == n
+    assert sim.supply_state()["setpoint_v"] == 0.0
+
+
+def test_ramp_keeps_to_the_rate_limit(sim_bench) -> None:
+    clock = FakeClock()
+    cfg = load_bench_text(sim_bench.bench_toml())
+    with open_bench(cfg, max_voltage_v=6.0, clock=clock, sleep=clock.sleep) as b:
+        b.supply.ramp_to(5.0, rate_v_per_s=10.0, step_v=0.25)
+        sent = [c for c in sim_bench.command_log("supply") if c.startswith("SOURce:VOLTage ")]
+        steps_v = [float(c.split()[1]) for c in sent]
+        assert len(steps_v) == 20 and steps_v[-1] == 5.0
+        assert np.all(np.diff([0.0, *steps_v]) <= 0.25 + 1e-9)
+        # 19 pauses of 0.25 V / 10 V/s between 20 steps (the clock does not move otherwise)
+        assert clock.now_s == pytest.approx(19 * 0.025, rel=1e-9)
+        assert sim_bench.supply_state()["setpoint_v"] == 5.0
+        b.supply.ramp_to(4.0, rate_v_per_s=10.0, step_v=0.25)  # back-to-back: first step waits
+        assert clock.sleeps[19] == pytest.approx(0.025, rel=1e-9)
+        assert sim_bench.supply_state()["setpoint_v"] == 4.0
+
+
+def test_wait_settled_times_out_with_the_last_reading(fast) -> None:
+    sim, b = fast
+    _power_up(b, 5.0)
+    t0 = time.monotonic()
+    with pytest.raises(InstrumentTimeout, match=r"not settled at 3 V.*last reading 5"):
+        b.supply.wait_settled(3.0, tol_v=0.01, timeout_s=0.2)
+    assert time.monotonic() - t0 < 1.5
+
+
+def test_overvoltage_trip_and_clear(fast) -> None:
+    sim, b = fast
+    _power_up(b, 5.0)
+    sim.inject("supply", "trip_ovp")
+    assert b.supply.protection_tripped() is True
+    assert b.supply.is_output_on() is False  # the trip forces the output off
+    b.supply.clear_protection()
+    assert b.supply.protection_tripped() is False and sim.supply_state()["tripped"] is False
+
+
+def test_generator_operations(bench) -> None:
+    sim, b = bench
+    g = b.generator
+    g.set_shape("sine")
+    g.set_frequency(1_000.0)
+    g.set_amplitude(0.2)
+    g.set_offset(0.0)
+    g.output(True)
+    st = sim.generator_state()
+    assert st["output_on"] is True and st["freq_hz"] == 1_000.0 and st["vpp_v"] == 0.2
+    assert st["offset_v"] == 0.0 and st["shape"].upper().startswith("SIN")
+    assert g.frequency() == 1_000.0 and g.amplitude() == 0.2 and g.offset() == 0.0
+    assert g.is_output_on() is True
+    g.set_shape("square")
+    g.sync()  # fast mode: a write is not waited for; *OPC? makes sure it was done
+    assert sim.generator_state()["shape"].upper().startswith("SQU")
+    g.output(False)
+    assert sim.generator_state()["output_on"] is False
+
+
+def test_scope_fetch_formats_agree_and_match_the_board(bench) -> None:
+    sim, b = bench
+    _power_up(b, 5.0)
+    sc, ch = b.scope, b.wiring.output_channel
+    res = sc.autoscale(ch, cycles=8, points=8_000)
+    truth = sim.truth
+    assert res.freq_hz == pytest.approx(truth.freq_at(5.0), rel=2e-3)
+    sc.acquire(timeout_s=2.0)
+    waves = {t: sc.fetch(ch, transfer=t) for t in ("int16", "int8", "ascii")}
+    ref = waves["int16"]
+    assert ref.volts.size == 8_000 and ref.clipped_samples == 0
+    assert ref.dt_s == pytest.approx(res.window_s / 8_000, rel=1e-6)
+    lsb_v = 8 * res.scale_v_div / 256
+    for t in ("int8", "ascii"):
+        np.testing.assert_allclose(waves[t].volts, ref.volts, atol=lsb_v * 1e-3 + 1e-6)
+        assert waves[t].dt_s == ref.dt_s and waves[t].t0_s == ref.t0_s
+    # a sine's peak-to-peak is 2*sqrt(2) times its RMS (any circuits handbook)
+    vpp_from_rms = 2 * math.sqrt(2) * float(np.std(ref.volts))
+    assert vpp_from_rms == pytest.approx(truth.vpp_at(5.0), rel=0.03)
+    assert dominant_frequency(ref.volts, ref.dt_s) == pytest.approx(truth.freq_at(5.0), rel=2e-3)
+    # the peaks sit at about 6 of the 8 divisions (common practice, no published source)
+    assert 5.0 <= truth.vpp_at(5.0) / res.scale_v_div <= 6.5
+
+
+def test_scope_clip_count_matches_the_instrument(bench) -> None:
+    sim, b = bench
+    _power_up(b, 5.0)
+    sc, ch = b.scope, b.wiring.output_channel
+    sc.setup_channel(ch, scale_v_div=0.02)  # a 0.16 V screen for a volts-level output
+    sc.set_timebase(window_s=2e-5, sample_rate_hz=2e8)
+    sc.set_trigger(source="free")
+    sc.acquire(timeout_s=2.0)
+    wf = sc.fetch(ch)
+    assert wf.clipped and wf.clipped_samples == int(sc.ask("clipped", channel=ch))
+
+
+def test_scope_rail_channel_sees_the_supply(bench) -> None:
+    sim, b = bench
+    _power_up(b, 4.0)
+    sc, ch = b.scope, b.wiring.rail_channel
+    sc.setup_channel(ch, scale_v_div=1.0, offset_v=4.0, coupling="dc", probe=1.0)
+    sc.set_timebase(window_s=1e-5, sample_rate_hz=1e8)
+    sc.set_trigger(source=ch, level_v=2.0, slope="rising")
+    sc.set_trigger(source="free")
+    sc.acquire(timeout_s=2.0)
+    wf = sc.fetch(ch)
+    # the rail carries only the small ripple of the board current; 8 V screen, LSB 31 mV
+    assert float(np.mean(wf.volts)) == pytest.approx(sim.supply_state()["output_v"], abs=0.05)
+
+
+def test_reset_clear_sync(bench) -> None:
+    sim, b = bench
+    _power_up(b, 5.0)
+    b.supply.reset()
+    # *RST puts OUTPut:STATe to OFF (SCPI-1999 vol. 2, OUTPut subsystem *RST value, from memory)
+    assert sim.supply_state()["output_on"] is False
+    b.scope.clear()
+    b.scope.sync(timeout_s=1.0)
+    assert sim.command_log("scope")[-1] == "*OPC?"
+
+
+def test_queued_error_strict_names_the_command(sim_bench) -> None:
+    cfg = load_bench_text(sim_bench.bench_toml())
+    with open_bench(cfg, max_voltage_v=6.0, strict=True) as b:
+        b.supply.set_voltage(1.0)  # clean
+        sim_bench.inject("supply", "push_error", code=-310, message="System error")
+        with pytest.raises(InstrumentError) as info:
+            b.supply.set_voltage(2.0)
+        assert info.value.code == -310 and info.value.command == "SOURce:VOLTage 2"
+        assert info.value.resource == b.supply.resource
+        b.supply.set_voltage(2.5)  # the queue was drained: no stale error
+
+
+def test_queued_error_fast_mode_at_a_point_of_consequence(fast) -> None:
+    sim, b = fast
+    b.supply.set_voltage(1.0)
+    sim.inject("supply", "push_error", code=-222, message="Data out of range")
+    b.supply.set_voltage(1.5)  # not checked yet in fast mode
+    with pytest.raises(InstrumentError) as info:
+        b.supply.output(True)
+    assert info.value.code == -222 and "SOURce:VOLTage 1.5" in info.value.command
+
+
+def test_fault_delay_is_a_timeout_then_the_session_recovers(fast) -> None:
+    sim, b = fast
+    b.supply.query_retries = 0
+    sim.inject("supply", "delay", seconds=0.6, count=1)
+    t0 = time.monotonic()
+    with pytest.raises(InstrumentTimeout):
+        b.supply.measure_voltage()
+    assert time.monotonic() - t0 < 1.5
+    time.sleep(0.7)  # the late reply arrives; it must not answer the next question
+    assert b.supply.get_current_limit() == sim.supply_state()["current_limit_a"]
+
+
+def test_fault_drop_is_connection_lost(fast) -> None:
+    sim, b = fast
+    sim.inject("supply", "drop_after", n=1)
+    b.supply.set_voltage(1.0)  # the last message it takes
+    t0 = time.monotonic()
+    with pytest.raises(ConnectionLost):
+        b.supply.measure_voltage()
+    assert time.monotonic() - t0 < 2.0
+
+
+def test_fault_stall_is_a_timeout(fast) -> None:
+    sim, b = fast
+    b.scope.query_retries = 0
+    sim.inject("scope", "stall")
+    t0 = time.monotonic()
+    with pytest.raises(InstrumentTimeout):
+        b.scope.scaling(1)
+    assert time.monotonic() - t0 < 2.0
+
+
+def test_fault_truncated_reply_is_a_timeout(fast) -> None:
+    sim, b = fast
+    b.supply.query_retries = 0
+    sim.inject("supply", "truncate", count=1)
+    with pytest.raises(InstrumentTimeout):
+        b.supply.get_voltage()
+    assert b.supply.get_ovp() == sim.supply_state()["ovp_v"]  # next exchange is clean
+
+
+@pytest.mark.parametrize("mode", ["length", "garbage"])
+def test_fault_corrupt_block_is_a_protocol_error(fast, mode: str) -> None:
+    sim, b = fast
+    sc = b.scope
+    sc.setup_channel(1, scale_v_div=0.5)
+    sc.set_timebase(window_s=1e-5, sample_rate_hz=1e9)
+    sc.acquire(timeout_s=2.0)
+    good = sc.fetch(1)
+    sim.inject("scope", "corrupt_block", count=1, mode=mode)
+    t0 = time.monotonic()
+    with pytest.raises(ProtocolError):
+        sc.fetch(1)
+    assert time.monotonic() - t0 < 2.0
+    again = sc.fetch(1)  # the session resynchronises
+    np.testing.assert_array_equal(again.volts, good.volts)
