@@ -53,6 +53,10 @@ class HarmonicAnalysis:
     enob : float
         Effective number of bits: log2(FSR / (sqrt(12) NAD)) when ``full_scale_v`` is
         given (IEEE 1241), else (SINAD - 1.76 dB) / 6.02 dB (assumes a full-scale input).
+    u_snr_db, u_sinad_db, u_enob : float
+        Standard uncertainties of the three figures above: the fundamental's amplitude
+        uncertainty combined with the chi-square spread of an RMS over ``dof`` Gaussian
+        residual samples, relative 1 / sqrt(2 dof).
     nad_rms_v : float
         RMS of noise and distortion, V.
     noise_rms_v : float
@@ -77,6 +81,9 @@ class HarmonicAnalysis:
     noise_rms_v: float
     n_samples: int
     method: str
+    u_snr_db: float = math.nan
+    u_sinad_db: float = math.nan
+    u_enob: float = math.nan
 
 
 @dataclass(frozen=True, slots=True)
@@ -320,6 +327,12 @@ def harmonics(
         enob = math.log2(fsr / (math.sqrt(12.0) * nad_rms)) if nad_rms > 0 else math.inf
     else:
         enob = (sinad - 1.76) / 6.02
+    db_per_rel = 20.0 / math.log(10.0)
+    rel_rms = 1.0 / math.sqrt(2.0 * dof)
+    rel_a1 = u_h / a1 if a1 > 0 else math.inf
+    u_snr = db_per_rel * math.hypot(rel_a1, rel_rms)
+    u_sinad = u_snr
+    u_enob = rel_rms / math.log(2.0) if full_scale_v is not None else u_sinad / 6.02
     return HarmonicAnalysis(
         fundamental_hz=f1,
         harmonic_v=tuple(harmonic_v),
@@ -335,6 +348,9 @@ def harmonics(
         noise_rms_v=noise_rms,
         n_samples=n_rec,
         method=f"ieee1241 least-squares harmonic fit, {fit.method} fundamental",
+        u_snr_db=u_snr,
+        u_sinad_db=u_sinad,
+        u_enob=u_enob,
     )
 
 
