@@ -83,7 +83,7 @@ def test_compound_messages_and_current_path(sim_bench, visa):
 def test_several_clients_and_disconnect(sim_bench, visa):
     res = sim_bench.resources["generator"]
     a, b = visa(res), visa(res)
-    a.write("FREQ 1234")
+    assert a.query("FREQ 1234;*OPC?") == "1"  # landed before the other client asks
     assert float(b.query("FREQ?")) == 1234.0
     # one client vanishing (raw socket, closed mid-message) never affects the others
     host, port = res.split("::")[1], int(res.split("::")[2])
@@ -102,7 +102,7 @@ def test_rst_restores_defaults(sim_bench, visa):
     gen = visa(sim_bench.resources["generator"])
     gen.write("FUNC SQU;FREQ 5000;OUTP ON")
     assert gen.query("FUNC?") == "SQU"
-    gen.write("*RST")
+    assert gen.query("*RST;*OPC?") == "1"
     st = sim_bench.generator_state()
     assert st["shape"] == "SINusoid" and not st["output_on"] and st["freq_hz"] == 1e3
 
