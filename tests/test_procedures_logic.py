@@ -178,3 +178,39 @@ def test_interpolation_matches_numpy_interp_and_propagates_uncertainty():
     # GUM 5.1.2, equal weights 0.5: u = sqrt(0.25 * 0.02^2 + 0.25 * 0.04^2)
     assert unc == pytest.approx(math.sqrt(0.25 * 0.02**2 + 0.25 * 0.04**2))
     assert interpolate_at(x, y, 5.5, u) == (None, None)
+
+
+# ---------------------------------------------------------------- votes from the detector
+
+
+def _record(amplitude_v, *, seed, n=2048, fs_hz=16e6, freq_hz=1.0e6, noise_v=0.01):
+    t = np.arange(n) / fs_hz
+    rng = np.random.default_rng(seed)
+    return amplitude_v * np.sin(2 * np.pi * freq_hz * t + 0.4) + rng.normal(0, noise_v, n)
+
+
+def test_votes_are_clear_far_from_the_detector_threshold_and_ambiguous_near_it():
+    from benchctl.analysis import detect_oscillation
+    from benchctl.procedures.measure import vote_from
+
+    fs = 16e6
+    strong = vote_from(detect_oscillation(_record(0.5, seed=1), fs_hz=fs), clear_margin_db=6.0)
+    assert strong.oscillating and strong.clear and strong.score >= 6.0
+    silent = vote_from(detect_oscillation(_record(0.0, seed=2), fs_hz=fs), clear_margin_db=6.0)
+    assert not silent.oscillating and silent.clear and silent.score <= -6.0
+    # Near the threshold: SNR = A^2 / 2 / sigma^2 (a sine's power A^2/2 over white noise
+    # of variance sigma^2, the IEEE 1241 SNR definition) of 10 dB, the detector's default
+    # min_snr_db, gives A = sigma * sqrt(2 * 10).
+    a = 0.01 * math.sqrt(2 * 10 ** (10 / 10))
+    marginal = [vote_from(detect_oscillation(_record(a, seed=s), fs_hz=fs), clear_margin_db=6.0)
+                for s in range(10)]
+    assert not any(v.clear for v in marginal)
+    assert all(abs(v.score) < 6.0 for v in marginal)
+
+
+def test_a_flat_record_is_a_clear_no():
+    from benchctl.analysis import detect_oscillation
+    from benchctl.procedures.measure import vote_from
+
+    vote = vote_from(detect_oscillation(np.zeros(256), fs_hz=1e6), clear_margin_db=6.0)
+    assert not vote.oscillating and vote.clear and vote.score <= -6.0
