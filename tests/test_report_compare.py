@@ -130,3 +130,14 @@ def test_bad_inputs(tmp_path):
         compare_runs(ra, tmp_path / "missing")
     with pytest.raises(ValueError, match="tolerance"):
         compare_runs(ra, ra, tolerance=-1)
+
+
+def test_parameters_matched_on_step_and_name(tmp_path):
+    # The runner keys a repeated name as "<step>.<name>": the same quantity must still meet.
+    rails = np.linspace(2, 6, 5)
+    a = {"startup_v": {"value": 3.0, "uncertainty": 0.01, "unit": "V", "step": "thresholds"}}
+    b = {"startup_v": {"value": 2.9, "uncertainty": 0.01, "unit": "V", "step": "sweep"},
+         "thresholds.startup_v": {"value": 3.0, "uncertainty": 0.01, "unit": "V", "step": "thresholds"}}
+    cmp = compare_runs(make_run(tmp_path / "a", "B", a, rails, rails), make_run(tmp_path / "b", "C", b, rails, rails))
+    got = {(p.step, p.name): p.verdict for p in cmp.parameters}
+    assert got == {("thresholds", "thresholds.startup_v"): "same", ("sweep", "sweep.startup_v"): "missing"}

@@ -17,7 +17,9 @@ from benchctl.report.runview import (
     RunView,
     StepData,
     direction_column,
+    display_names,
     finite,
+    keyed_parameters,
     load_run,
 )
 
@@ -28,7 +30,9 @@ Verdict = Literal["same", "shifted", "missing"]
 class ParameterDelta:
     """One parameter of run A against run B.
 
-    ``difference`` is B - A in ``unit``; ``combined_uncertainty`` is sqrt(ua^2 + ub^2)
+    Parameters are matched on (step, name), so ``thresholds.startup_v`` in one run meets
+    ``startup_v`` of step ``thresholds`` in the other; ``name`` is the bare name where that
+    is unique. ``difference`` is B - A in ``unit``; ``combined_uncertainty`` is sqrt(ua^2 + ub^2)
     (a missing uncertainty counts as 0); ``threshold`` is the size a difference must
     exceed to be called shifted (the larger of the two limits of the rule).
     """
@@ -44,6 +48,7 @@ class ParameterDelta:
     threshold: float | None
     verdict: Verdict
     note: str = ""
+    step: str = ""
 
 
 @dataclass(frozen=True)
@@ -95,25 +100,30 @@ class Comparison:
     def tables(self) -> list[Table]:
         """rich tables: parameters, then curves."""
         t = Table(title=esc(f"A = {self.label_a}   B = {self.label_b}"))
-        for col in ("Parameter (unit)", "A", "u(A)", "B", "u(B)", "B - A", "Limit", "Verdict"):
-            t.add_column(col, justify="right" if col not in ("Parameter (unit)", "Verdict") else "left",
-                         no_wrap=True, min_width=7 if col == "Verdict" else None)
+        t.add_column("Parameter", min_width=16)
+        for col in ("A", "B"):
+            t.add_column(col, justify="right", max_width=16)
+        t.add_column("B - A", justify="right", no_wrap=True)  # the limit is in --json and --markdown
+        t.add_column("Verdict", no_wrap=True, min_width=7)
         for p in self.parameters:
             style = {"shifted": "bold red", "missing": "yellow"}.get(p.verdict, "green")
             label = f"{p.name} ({p.unit})" if p.unit else p.name
-            t.add_row(esc(label), fmt(p.value_a), fmt(p.uncertainty_a), fmt(p.value_b),
-                      fmt(p.uncertainty_b), fmt(p.difference), fmt(p.threshold, 4),
-                      f"[{style}]{p.verdict}[/{style}]")
-        notes = [f"{p.name}: {p.note}" for p in self.parameters if p.note]
+            t.add_row(esc(label), _pm(p.value_a, p.uncertainty_a), _pm(p.value_b, p.uncertainty_b),
+                      fmt(p.difference, 4), f"[{style}]{p.verdict}[/{style}]")
+        notes = [f"{p.name}: {p.note}" for p in self.parameters if p.note and not p.note.startswith("uncertainty")]
+        no_u = [p.name for p in self.parameters if p.note.startswith("uncertainty")]
+        if no_u:
+            notes.append("uncertainty missing, counted as 0: " + ", ".join(no_u))
         if notes:
             t.caption, t.caption_justify = esc("; ".join(notes)), "left"
         c = Table(title="Amplitude vs rail: B - A where both runs have the rail")
         for col in ("Step", "Curve", "Rail (V)", "Points", "Max |B-A| (V)", "RMS (V)", "Max at (V)"):
-            c.add_column(col, no_wrap=True, justify="left" if col in ("Step", "Curve") else "right")
+            c.add_column(col, justify="left" if col in ("Step", "Curve") else "right")
         for cd in self.curves:
-            span = f"{fmt(cd.overlap_lo_v)} to {fmt(cd.overlap_hi_v)}" if cd.overlap_lo_v is not None else DASH
-            c.add_row(esc(cd.step), esc(cd.column), span, str(cd.n_points), fmt(cd.max_abs_diff),
-                      fmt(cd.rms_diff), fmt(cd.rail_at_max_v))
+            span = (f"{fmt(cd.overlap_lo_v, 4)} to {fmt(cd.overlap_hi_v, 4)}"
+                    if cd.overlap_lo_v is not None else DASH)
+            c.add_row(esc(cd.step), esc(cd.column), span, str(cd.n_points), fmt(cd.max_abs_diff, 4),
+                      fmt(cd.rms_diff, 4), fmt(cd.rail_at_max_v, 4))
         curve_notes = [f"{cd.step} {cd.column}: {cd.note}" for cd in self.curves if cd.note]
         if curve_notes:
             c.caption, c.caption_justify = esc("; ".join(curve_notes)), "left"
@@ -135,6 +145,10 @@ class Comparison:
         if self.notes:
             out += ["## Notes", ""] + [f"- {n}" for n in self.notes] + [""]
         return "\n".join(out)
+
+
+def _pm(value: float | None, u: float | None) -> str:
+    return fmt(value, 4) if u is None or value is None else f"{fmt(value, 4)} ± {fmt(u, 2)}"
 
 
 RULE = ("shifted when |B - A| > {k} * sqrt(u(A)^2 + u(B)^2) and |B - A| > {tol} * max(|A|, |B|); "
@@ -191,8 +205,10 @@ def compare_runs(
         raise ValueError(f"{coverage_k=} must be > 0")
     a = load_run(run_a)
     b = load_run(run_b)
-    names = list(dict.fromkeys([*a.parameters, *b.parameters]))
-    deltas = [_delta(n, a.parameters.get(n), b.parameters.get(n), tolerance, coverage_k) for n in names]
+    pa, pb = keyed_parameters(a), keyed_parameters(b)
+    keys = list(dict.fromkeys([*pa, *pb]))
+    labels = display_names(keys)
+    deltas = [_delta(labels[k], k[0], pa.get(k), pb.get(k), tolerance, coverage_k) for k in keys]
     notes = [f"A: {p}" for p in a.problems] + [f"B: {p}" for p in b.problems]
     return Comparison(
         run_a=str(a.path), run_b=str(b.path), label_a=_label(a), label_b=_label(b),
@@ -211,23 +227,24 @@ def judge(a: float, b: float, ua: float | None, ub: float | None, *, tolerance: 
     return ("shifted" if shifted else "same"), d, uc, threshold
 
 
-def _delta(name: str, pa: dict | None, pb: dict | None, tolerance: float, k: float) -> ParameterDelta:
+def _delta(name: str, step: str, pa: dict | None, pb: dict | None, tolerance: float,
+           k: float) -> ParameterDelta:
     unit = str((pa or pb or {}).get("unit") or "")
     va, vb = finite((pa or {}).get("value")), finite((pb or {}).get("value"))
     ua, ub = finite((pa or {}).get("uncertainty")), finite((pb or {}).get("uncertainty"))
     if pa is None or pb is None:
         return ParameterDelta(name, unit, va, vb, ua, ub, None, None, None, "missing",
-                              f"not in run {'A' if pa is None else 'B'}")
+                              f"not in run {'A' if pa is None else 'B'}", step)
     if va is None or vb is None:
         return ParameterDelta(name, unit, va, vb, ua, ub, None, None, None, "missing",
-                              f"no value in run {'A' if va is None else 'B'}")
+                              f"no value in run {'A' if va is None else 'B'}", step)
     unit_b = str(pb.get("unit") or "")
     if unit != unit_b:
         return ParameterDelta(name, unit, va, vb, ua, ub, None, None, None, "missing",
-                              f"units differ: {unit!r} vs {unit_b!r}")
+                              f"units differ: {unit!r} vs {unit_b!r}", step)
     verdict, d, uc, threshold = judge(va, vb, ua, ub, tolerance=tolerance, coverage_k=k)
     note = "" if ua is not None and ub is not None else "uncertainty missing, counted as 0"
-    return ParameterDelta(name, unit, va, vb, ua, ub, d, uc, threshold, verdict, note)
+    return ParameterDelta(name, unit, va, vb, ua, ub, d, uc, threshold, verdict, note, step)
 
 
 def _label(run: RunView) -> str:

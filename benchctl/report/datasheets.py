@@ -16,7 +16,14 @@ from rich.table import Table
 
 from benchctl.errors import ConfigError
 from benchctl.report.formatting import fmt, md_table
-from benchctl.report.runview import RunView, finite, load_run
+from benchctl.report.runview import (
+    ParamKey,
+    RunView,
+    display_names,
+    finite,
+    keyed_parameters,
+    load_run,
+)
 
 CSV_HEADER = ["board", "revision", "parameter", "unit", "n_units", "min", "typ", "max", "mean",
               "std", "k", "guard_low", "guard_high", "spec_min", "spec_max", "units", "note"]
@@ -118,20 +125,25 @@ class Datasheet:
             title = f"{g.board} rev {g.revision or '?'}: {n} unit{'s' if n != 1 else ''} (Typ = median)"
             t = Table(title=esc(title))
             has_spec = any(r.spec_min is not None or r.spec_max is not None for r in g.rows)
-            cols = ["Parameter", "Unit", "Min", "Typ", "Max", "n"]
+            cols = ["Parameter (unit)", "Min", "Typ", "Max", "n"]
             if self.coverage is not None:
-                cols += ["Guard low", "Guard high"]
+                cols += ["Guard lo", "Guard hi"]
             if has_spec:
-                cols += ["Spec min", "Spec max"]
+                cols.append("Spec")
             for c in cols:
-                t.add_column(c, justify="left" if c in ("Parameter", "Unit") else "right", no_wrap=True)
+                if c == "Parameter (unit)":
+                    t.add_column(c, min_width=16)
+                elif c == "Spec":
+                    t.add_column(c, justify="right")
+                else:
+                    t.add_column(c, justify="right", no_wrap=True)
             for r in g.rows:
-                cells = [esc(r.parameter), esc(r.unit), fmt(r.minimum), fmt(r.typical), fmt(r.maximum),
-                         str(r.n_units)]
+                label = f"{r.parameter} ({r.unit})" if r.unit else r.parameter
+                cells = [esc(label), fmt(r.minimum, 4), fmt(r.typical, 4), fmt(r.maximum, 4), str(r.n_units)]
                 if self.coverage is not None:
-                    cells += [fmt(r.guard_low), fmt(r.guard_high)]
+                    cells += [fmt(r.guard_low, 4), fmt(r.guard_high, 4)]
                 if has_spec:
-                    cells += [fmt(r.spec_min), fmt(r.spec_max)]
+                    cells.append(_spec_text(r.spec_min, r.spec_max))
                 t.add_row(*cells)
             notes = [f"{r.parameter}: {r.note}" for r in g.rows if r.note]
             if notes:
@@ -198,6 +210,7 @@ def datasheet(
 
     Notes
     -----
+    Parameters are matched across units on (step, name), like :func:`compare_runs` does.
     k comes from ``benchctl.analysis.tolerance_factor`` (exact, or Howe's approximation
     [1]_ with ``factor="howe"``); without that module, from :func:`howe_factor`.
     :attr:`Datasheet.factor_source` says which. Typ is always the median.
@@ -243,8 +256,10 @@ def datasheet(
         groups.setdefault((board, revision), []).append((unit, run))
     built = []
     for (board, revision), members in groups.items():
-        names = list(dict.fromkeys(n for _, run in members for n in run.parameters))
-        rows = tuple(_row(name, members, coverage, confidence, k_of) for name in names)
+        keyed = [(unit, keyed_parameters(run)) for unit, run in members]
+        keys = list(dict.fromkeys(k for _, params in keyed for k in params))
+        labels = display_names(keys)
+        rows = tuple(_row(labels[key], key, keyed, coverage, confidence, k_of) for key in keys)
         built.append(DatasheetGroup(board, revision, tuple(u for u, _ in members),
                                     tuple(str(r.path) for _, r in members), rows))
     return Datasheet(tuple(built), coverage, confidence, source, tuple(skipped))
@@ -302,12 +317,12 @@ def _min_typ_max(values: list[float]) -> tuple[float, float, float]:
     return float(r.min_value), float(r.typ_value), float(r.max_value)
 
 
-def _row(name: str, members: list[tuple[str, RunView]], coverage: float | None, confidence: float,
-         factor) -> DatasheetRow:
+def _row(name: str, key: ParamKey, members: list[tuple[str, dict[ParamKey, dict[str, Any]]]],
+         coverage: float | None, confidence: float, factor) -> DatasheetRow:
     values, units_with, unit_names, notes = [], [], set(), []
     spec_min, spec_max = set(), set()
-    for unit, run in members:
-        p = run.parameters.get(name)
+    for unit, params in members:
+        p = params.get(key)
         if p is None:
             continue
         unit_names.add(str(p.get("unit") or ""))
@@ -343,6 +358,16 @@ def _row(name: str, members: list[tuple[str, RunView]], coverage: float | None, 
         spec_max=next(iter(spec_max)) if len(spec_max) == 1 else None,
         units=tuple(units_with), note="; ".join(notes),
     )
+
+
+def _spec_text(lo: float | None, hi: float | None) -> str:
+    if lo is None and hi is None:
+        return ""
+    if lo is None:
+        return f"<= {fmt(hi, 4)}"
+    if hi is None:
+        return f">= {fmt(lo, 4)}"
+    return f"{fmt(lo, 4)} to {fmt(hi, 4)}"
 
 
 def _guard_text(sheet: Datasheet) -> str:

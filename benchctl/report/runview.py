@@ -122,6 +122,34 @@ def load_run(run_dir: str | Path) -> RunView:
     )
 
 
+ParamKey = tuple[str, str]
+"""(step, name) of a parameter, independent of how the run keyed it in parameters.json."""
+
+
+def keyed_parameters(run: RunView) -> dict[ParamKey, dict[str, Any]]:
+    """Parameters by (step, base name).
+
+    The runner keys a parameter by its name, or ``<step>.<name>`` when an earlier step
+    already gave that name, so the same quantity can carry different keys in two runs.
+    Matching on (step, name) makes runs comparable whatever the order of the steps.
+    """
+    out: dict[ParamKey, dict[str, Any]] = {}
+    for key, entry in run.parameters.items():
+        step = str(entry.get("step") or "")
+        base = key[len(step) + 1:] if step and key.startswith(step + ".") else key
+        out.setdefault((step, base), entry)
+    return out
+
+
+def display_names(keys) -> dict[ParamKey, str]:
+    """Short labels: the bare name where it is unique, ``<step>.<name>`` where it is not."""
+    keys = list(keys)
+    count: dict[str, int] = {}
+    for _, base in keys:
+        count[base] = count.get(base, 0) + 1
+    return {(step, base): base if count[base] == 1 or not step else f"{step}.{base}" for step, base in keys}
+
+
 def as_float(value: Any) -> float | None:
     """Return ``value`` as a finite-or-not float, or None if it is not a number."""
     if value is None or isinstance(value, bool):
