@@ -104,11 +104,13 @@ class Instrument:
     # -- running a message ------------------------------------------------------------
     def execute(self, message: str) -> tuple[str | None, list[memoryview]]:
         """Run one program message; return the response text and blocks to splice in."""
-        self._tls.blocks = []
-        with self.bench.cond:
-            self.bench.clock.advance(COMMAND_TIME_S)
+        tls = self._tls
+        tls.blocks = blocks = []
+        bench = self.bench
+        with bench.lock:  # the RLock under bench.cond (handlers may cond.wait on it)
+            bench.clock.advance(COMMAND_TIME_S)
             out = self.tree.execute(message, context=self, errors=self.errors)
-        return out, self._tls.blocks
+        return out, blocks
 
     def send_block(self, data: memoryview) -> str:
         """Return the placeholder for a block and queue the bytes for the server."""
@@ -286,6 +288,7 @@ class InstrumentServer:
     def __init__(self, instrument: Instrument, *, host: str = "127.0.0.1", port: int = 0) -> None:
         self.instrument = instrument
         self.faults = Faults()
+        self._armed = False  # any fault armed: the fast path skips the fault checks
         self._log: deque[str] = deque(maxlen=LOG_LIMIT)
         self._flock = threading.Lock()
         self._stop = instrument.stop
@@ -325,6 +328,7 @@ class InstrumentServer:
         kw = check_fault(self.instrument.role, kind, kw)
         f = self.faults
         with self._flock:
+            self._armed = kind not in ("push_error", "trip_ovp") or self._armed
             if kind == "drop_after":
                 f.drop_after = kw["n"]
             elif kind == "delay":
@@ -345,10 +349,10 @@ class InstrumentServer:
     def clear_faults(self) -> None:
         with self._flock:
             self.faults = Faults()
+            self._armed = False
 
     def command_log(self) -> list[str]:
-        with self._flock:
-            return list(self._log)
+        return list(self._log)
 
     # -- threads ----------------------------------------------------------------------
     def _accept_loop(self) -> None:
@@ -378,6 +382,11 @@ class InstrumentServer:
                     break
                 if not chunk:
                     break
+                if not buf and chunk[-1:] == b"\n" and chunk.count(b"\n") == 1:
+                    # the common case: exactly one whole message in one segment
+                    if not self._handle(conn, chunk[:-1]):
+                        return
+                    continue
                 buf += chunk
                 while True:
                     nl = buf.find(b"\n")
@@ -400,16 +409,18 @@ class InstrumentServer:
         if line.endswith(b"\r"):
             line = line[:-1]
         text = line.decode("latin-1")
+        self._log.append(text)  # deque.append is atomic
         f = self.faults
-        with self._flock:
-            self._log.append(text)
-            if f.stall:
-                return True
-            if f.drop_after is not None:
-                if f.drop_after <= 0:
-                    f.drop_after = None
-                    return False
-                f.drop_after -= 1
+        armed = self._armed
+        if armed:
+            with self._flock:
+                if f.stall:
+                    return True
+                if f.drop_after is not None:
+                    if f.drop_after <= 0:
+                        f.drop_after = None
+                        return False
+                    f.drop_after -= 1
         try:
             out, blocks = self.instrument.execute(text)
         except Exception:  # a bug in a handler must not kill the server
@@ -419,15 +430,22 @@ class InstrumentServer:
             return True
         if out is None:
             return True
+        if not blocks and not armed:
+            try:
+                conn.sendall((out + "\n").encode("latin-1"))
+            except OSError:
+                return False
+            return True
         parts = self._parts(out, blocks)
-        with self._flock:
-            delay = 0.0
-            if f.delay_count > 0:
-                f.delay_count -= 1
-                delay = f.delay_s
-            truncate = f.truncate_count > 0
-            if truncate:
-                f.truncate_count -= 1
+        delay, truncate = 0.0, False
+        if armed:
+            with self._flock:
+                if f.delay_count > 0:
+                    f.delay_count -= 1
+                    delay = f.delay_s
+                truncate = f.truncate_count > 0
+                if truncate:
+                    f.truncate_count -= 1
         if delay:
             self._stop.wait(delay)
         if truncate:
@@ -455,6 +473,8 @@ class InstrumentServer:
 
     def _maybe_corrupt(self, block: memoryview):
         f = self.faults
+        if not self._armed:
+            return block
         with self._flock:
             if f.corrupt_count <= 0:
                 return block
