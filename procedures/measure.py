@@ -95,8 +95,9 @@ def _fs(wf: Any) -> float:
     return 1.0 / float(wf.dt_s)
 
 
-def _detect(volts: np.ndarray, fs_hz: float, band_hz: tuple[float, float] | None) -> Any:
-    kw: dict[str, Any] = {"fs_hz": fs_hz}
+def _detect(volts: np.ndarray, fs_hz: float, band_hz: tuple[float, float] | None,
+            **thresholds: float) -> Any:
+    kw: dict[str, Any] = {"fs_hz": fs_hz, **thresholds}
     if band_hz is not None:
         kw["band_hz"] = band_hz
     return analysis.detect_oscillation(volts, **kw)
@@ -273,12 +274,20 @@ def dwell(ctx: Any, seconds: float, *, timeout_s: float = 5.0, points: int = 200
 
 
 def probe_oscillation(ctx: Any, setup: ScopeSetup, *, band_hz: tuple[float, float] | None,
-                      timeout_s: float = 5.0) -> tuple[Any, Any]:
-    """One acquisition with a fixed set-up; returns ``(detection, waveform)``."""
+                      timeout_s: float = 5.0, min_snr_db: float = 10.0,
+                      min_prominence_db: float = 20.0) -> tuple[Any, Any]:
+    """One acquisition with a fixed set-up; returns ``(detection, waveform)``.
+
+    ``min_snr_db`` / ``min_prominence_db`` are handed to the detector: the SNR is a ratio
+    of total powers and does not grow with the record, while the peak prominence gains
+    10 log10(N/2) dB of processing gain -- so a low SNR threshold with the prominence test
+    sees fainter oscillations in the same record.
+    """
     ch = ctx.bench.wiring.output_channel
     setup.apply(ctx.bench.scope, ch)
     wf = acquire_output(ctx, timeout_s=timeout_s)
-    det = _detect(np.asarray(wf.volts, dtype=float), _fs(wf), band_hz)
+    det = _detect(np.asarray(wf.volts, dtype=float), _fs(wf), band_hz, min_snr_db=min_snr_db,
+                  min_prominence_db=min_prominence_db)
     return det, wf
 
 

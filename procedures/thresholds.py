@@ -107,6 +107,11 @@ class DropoutStartup(Procedure):
               minimum=0, maximum=20),
         Param("clear_margin_db", float, "dB", 6.0,
               "evidence this far from the detector's threshold decides alone", minimum=0.0),
+        Param("min_snr_db", float, "dB", 0.0, "detector: least SNR (total powers) for "
+              "'oscillating'; low, so that the peak-prominence test (which gains from the "
+              "record length) decides faint signals"),
+        Param("min_prominence_db", float, "dB", 20.0, "detector: least spectral-peak "
+              "prominence over the periodogram median", minimum=0.0),
         Param("off_s", float, "s", 0.01, "output off this long before each start-up probe",
               minimum=0.0),
         Param("startup_wait_s", float, "s", 0.02, "after each start-up probe's power-on, the "
@@ -174,6 +179,8 @@ class DropoutStartup(Procedure):
         if freq:
             band = (0.5 * freq, 2.0 * freq)
         clear_db = float(params["clear_margin_db"])
+        thresholds = {"min_snr_db": float(params["min_snr_db"]),
+                      "min_prominence_db": float(params["min_prominence_db"])}
         done = [0]
 
         def make_probe(what: str):
@@ -185,8 +192,9 @@ class DropoutStartup(Procedure):
                     else:
                         tracker.power_cycle_at(rail_v, off_s=float(params["off_s"]))
                         dwell(ctx, float(params["startup_wait_s"]), timeout_s=opts.timeout_s)
-                    det, _wf = probe_oscillation(ctx, setup, band_hz=band, timeout_s=opts.timeout_s)
-                    vote = vote_from(det, clear_margin_db=clear_db)
+                    det, _wf = probe_oscillation(ctx, setup, band_hz=band, timeout_s=opts.timeout_s,
+                                                 **thresholds)
+                    vote = vote_from(det, clear_margin_db=clear_db, **thresholds)
                     return {
                         "search": what, "label": label, "repeat": repeat,
                         "vote_clear": vote.clear, "vote_score": vote.score,

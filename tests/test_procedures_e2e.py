@@ -182,3 +182,34 @@ def test_startup_time_matches_the_board(rig):
     assert abs(got["startup_time_s"].value - want) <= 25e-6 + 0.03 * want
     shots = [r for r in ctx.rows.values() if r["kind"] == "shot"]
     assert shots and all(r["settled"] for r in shots)
+
+
+def test_faint_onset_repeats_only_near_the_threshold_and_still_brackets_it(rig, tmp_path):
+    """A board whose amplitude just above dropout (20 mVpp) is near the noise (4 mV rms)."""
+    from importlib import resources
+
+    text = resources.files("benchctl.simulated").joinpath("boards/beacon.toml").read_text()
+    lines = []
+    for line in text.splitlines():
+        if line.startswith("onset_vpp_v"):
+            line = "onset_vpp_v = 0.02"
+        elif line.startswith("noise_v_rms"):
+            line = "noise_v_rms = 0.004"
+        lines.append(line)
+    board = tmp_path / "faint.toml"
+    board.write_text("\n".join(lines) + "\n")
+    sim, bench = rig(str(board), 7, None)
+    truth = sim.truth
+    got, ctx, _ = _run(bench, "dropout_startup", lo_v=2.4, hi_v=3.3, source="", search="dropout")
+    probes = [r for k, r in ctx.rows.items() if k != "setup"]  # one acquisition each
+    d = got["dropout_v"]
+    # The detector sees 20 mVpp in 4 mV rms noise through its peak-prominence test (the
+    # periodogram gains 10 log10(N/2) = 27 dB at N = 1024): the bracket still holds the
+    # truth, 1 mV for settling.
+    assert d.low - 1e-3 <= truth.dropout_v <= d.high + 1e-3
+    repeated = [r for r in probes if r["repeat"] > 0]
+    # repeats happen, and only close to the threshold (within 30 mV, where the onset's
+    # amplitude is within a few noise sigmas of the detection limit)
+    assert all(abs(r["rail_set_v"] - truth.dropout_v) < 0.03 for r in repeated)
+    assert repeated
+    assert len(probes) <= math.log2(0.9 / 0.005) + 4
