@@ -19,7 +19,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from benchctl.analysis._common import as_record, check_positive, db10, db20
-from benchctl.analysis.waveform import _cos_sin, _dirichlet, _dot, _hann, fit_sine
+from benchctl.analysis.waveform import _cos_sin, _dirichlet, _dot, _fit_from, _hann, fit_sine
 from benchctl.errors import MeasurementError
 
 __all__ = ["Detection", "HarmonicAnalysis", "detect_oscillation", "harmonics"]
@@ -95,7 +95,8 @@ class Detection:
     oscillating : bool
         The verdict: every test below passed.
     snr_db : float
-        Fundamental power over noise power (harmonics removed), dB.
+        Power of the examined line over the noise floor, dB: noise variance from the
+        median of the Hann periodogram (unmoved by harmonics and spurs).
     prominence_db : float
         Spectral peak over the median of the spectrum (the noise floor), dB.
     freq_hz : float
@@ -103,7 +104,9 @@ class Detection:
     vpp_v : float
         Peak-to-peak of the fitted fundamental, V.
     in_band : bool
-        ``freq_hz`` lies inside the expected band (True when no band is given).
+        ``freq_hz`` lies inside the expected band (True when no band is given). With a
+        band, the strongest line inside it is the one examined; the reason names a
+        stronger line outside it.
     reason : str
         One line saying why the verdict was reached.
     """
@@ -292,7 +295,26 @@ def harmonics(
     if int(n) < 2:
         raise ValueError(f"n={n!r} must be >= 2")
     arr = as_record(y, min_samples=16)
-    fit = fit_sine(arr, fs_hz=fs, freq_hz=freq_hz)
+    return _analyse(arr, fs, freq_hz=freq_hz, start_cycles=None, n=int(n),
+                    full_scale_v=full_scale_v)
+
+
+def _analyse(
+    arr: NDArray[np.float64],
+    fs: float,
+    *,
+    freq_hz: float | None,
+    start_cycles: float | None,
+    n: int,
+    full_scale_v: float | None,
+) -> HarmonicAnalysis:
+    """:func:`harmonics` on a checked record, optionally from a given spectral start."""
+    if freq_hz is None and start_cycles is not None:
+        if np.ptp(arr) == 0.0:
+            raise MeasurementError("record is flat: no sine")
+        fit = _fit_from(arr, fs, 2.0 * math.pi * start_cycles, fit_freq=True)
+    else:
+        fit = fit_sine(arr, fs_hz=fs, freq_hz=freq_hz)
     f1 = fit.freq_hz
     n_rec = arr.size
     if freq_hz is None:
@@ -354,16 +376,42 @@ def harmonics(
     )
 
 
-def _prominence_db(y: NDArray[np.float64]) -> tuple[float, float]:
-    """(peak-over-median of the Hann periodogram in dB, peak frequency in cycles/sample)."""
-    x = (y - y.mean()) * _hann(y.size)
+def _prominence_db(
+    y: NDArray[np.float64], band_cycles: tuple[float, float] | None = None
+) -> tuple[float, float, float]:
+    """Strongest line of the Hann periodogram (inside a band, if given).
+
+    Returns (its height over the median of the whole periodogram in dB, its frequency in
+    cycles/sample by log-parabola interpolation, the white-noise variance implied by the
+    median, V^2). A white-noise bin is exponentially distributed with mean sigma^2 sum(w^2),
+    so median / ln 2 / sum(w^2) estimates sigma^2 unmoved by a few lines (harmonics, spurs).
+    """
+    n = y.size
+    win = _hann(n)
+    x = (y - y.mean()) * win
     p = np.abs(np.fft.rfft(x)) ** 2
-    p = p[1:]
-    k = int(np.argmax(p))
-    floor = float(np.median(p))
+    p[0] = 0.0
+    floor = float(np.median(p[1:]))
+    noise_var = floor / math.log(2.0) / float(win @ win)
+    if band_cycles is not None:
+        lo_k = max(1, int(math.floor(band_cycles[0] * n)))
+        hi_k = min(p.size - 1, int(math.ceil(band_cycles[1] * n)))
+        if hi_k < lo_k:
+            return 0.0, 0.5 * (band_cycles[0] + band_cycles[1]), noise_var
+        k = lo_k + int(np.argmax(p[lo_k : hi_k + 1]))
+        if (k > 1 and p[k - 1] > p[k]) or (k + 1 < p.size and p[k + 1] > p[k]):
+            # the band's largest bin is the skirt of a line outside it: no line in band
+            return -math.inf, (k + 0.0) / n, noise_var
+    else:
+        k = 1 + int(np.argmax(p[1:]))
+    frac = 0.0
+    if 1 <= k < p.size - 1 and p[k] > 0.0:
+        la, lb, lc = np.log(np.maximum(p[k - 1 : k + 2], np.finfo(float).tiny))
+        den = la - 2.0 * lb + lc
+        frac = float(np.clip(0.5 * (la - lc) / den, -0.5, 0.5)) if den < 0.0 else 0.0
     if floor <= 0.0:
-        return (math.inf if p[k] > 0 else 0.0), (k + 1) / y.size
-    return db10(float(p[k]) / floor), (k + 1) / y.size
+        return (math.inf if p[k] > 0 else 0.0), (k + frac) / n, noise_var
+    return db10(float(p[k]) / floor), (k + frac) / n, noise_var
 
 
 def detect_oscillation(
@@ -371,15 +419,17 @@ def detect_oscillation(
     *,
     fs_hz: float,
     band_hz: tuple[float, float] | None = None,
-    min_snr_db: float = 10.0,
+    min_snr_db: float = 0.0,
     min_prominence_db: float = 20.0,
     min_vpp_v: float = 0.0,
 ) -> Detection:
     """Decide whether a record holds an oscillation, and return the evidence.
 
-    Three tests, all of which must pass: the fundamental stands above the noise
-    (IEEE 1241 SNR, harmonics removed, >= ``min_snr_db``); the strongest spectral line
-    stands above the median of a Hann-window periodogram (>= ``min_prominence_db``); its
+    The strongest line of a Hann-window periodogram (the strongest inside ``band_hz``
+    when a band is given) is fitted by the IEEE 1057 four-parameter fit, then three tests
+    must all pass: its power stands above the noise floor (>= ``min_snr_db``; noise
+    variance from the periodogram median, so harmonics and spurs do not count as noise);
+    its periodogram bin stands above the median bin (>= ``min_prominence_db``); its
     frequency lies inside ``band_hz``. Optionally the fitted Vpp must reach ``min_vpp_v``.
 
     Parameters
@@ -391,9 +441,11 @@ def detect_oscillation(
     band_hz : (float, float), optional
         Expected frequency band (lo, hi), Hz, inclusive.
     min_snr_db, min_prominence_db : float
-        Thresholds, dB. The defaults sit well above what white noise gives: the largest of
-        N/2 periodogram bins of noise is about ln(N/2)/ln 2 times the median (10 dB at
-        N = 2048), common practice, no published source for the margin.
+        Thresholds, dB. The defaults sit well above what white noise alone gives: the
+        largest of N/2 periodogram bins of noise is about ln(N/2)/ln 2 times the median
+        (10 dB at N = 2048), and a line fitted to noise alone carries about 2 ln(N/2) / N of
+        the noise power (-21 dB at N = 2048, -7 dB at N = 64). The margins are common
+        practice, no published source.
     min_vpp_v : float
         Smallest fitted peak-to-peak accepted, V.
 
@@ -410,34 +462,64 @@ def detect_oscillation(
     if np.ptp(arr) == 0.0:
         return Detection(False, -math.inf, 0.0, math.nan, 0.0, band_hz is None,
                          f"record is flat at {arr[0]:.4g} V: no signal")
-    prominence, f_peak = _prominence_db(arr)
+    band_cycles = None if band_hz is None else (lo / fs, hi / fs)
+    prominence, f_peak, noise_var = _prominence_db(arr, band_cycles)
+    if prominence == -math.inf:
+        prom_all, f_all, _ = _prominence_db(arr)
+        return Detection(False, -math.inf, prom_all, f_all * fs, 0.0, False,
+                         f"not oscillating: no spectral line inside the band {lo:g}..{hi:g} Hz; "
+                         f"the strongest line is at {f_all * fs:.6g} Hz")
     try:
-        ana = harmonics(arr, fs_hz=fs, n=5)
+        # fit the strongest line inside the band: an out-of-band spur (mains pick-up, a
+        # clock) must not hide an in-band oscillation
+        ana = _analyse(arr, fs, freq_hz=None, start_cycles=f_peak, n=5, full_scale_v=None)
     except MeasurementError as exc:
         return Detection(False, -math.inf, prominence, f_peak * fs, 0.0, False,
                          f"no sine could be fitted: {exc.reason}")
     freq = ana.fundamental_hz
     vpp = 2.0 * ana.harmonic_v[0]
+    # amplitude against the noise floor: the line's power over the median-implied noise
+    # variance (robust to harmonics and spurs); the IEEE 1241 residual SNR when the
+    # periodogram median is zero (a record of a few ADC codes)
+    if noise_var > 0.0:
+        snr = db10(0.5 * ana.harmonic_v[0] ** 2 / noise_var)
+    else:
+        snr = ana.snr_db
     in_band = True if band_hz is None else (lo <= freq <= hi)
     failures = []
-    if ana.snr_db < min_snr_db:
-        failures.append(f"SNR {ana.snr_db:.1f} dB < {min_snr_db:g} dB")
+    if snr < min_snr_db:
+        failures.append(f"SNR {snr:.1f} dB < {min_snr_db:g} dB")
     if prominence < min_prominence_db:
         failures.append(f"peak prominence {prominence:.1f} dB < {min_prominence_db:g} dB")
     if not in_band:
         failures.append(f"frequency {freq:.6g} Hz outside band {lo:g}..{hi:g} Hz")
     if vpp < min_vpp_v:
         failures.append(f"Vpp {vpp:.4g} V < {min_vpp_v:g} V")
+    if band_cycles is not None:
+        prom_all, f_all, _ = _prominence_db(arr)
+        if prom_all > prominence + 3.0 and not lo <= f_all * fs <= hi:
+            # a stronger line outside the band: is the in-band line one of its harmonics?
+            k = round(freq / (f_all * fs)) if f_all > 0 else 0
+            if 2 <= k <= 10 and abs(freq - k * f_all * fs) <= 2.0 * fs / arr.size:
+                failures.append(
+                    f"the in-band line is harmonic {k} of the stronger {f_all * fs:.6g} Hz "
+                    f"line outside the band {lo:g}..{hi:g} Hz"
+                )
+            elif failures:
+                failures.append(
+                    f"the strongest line, {f_all * fs:.6g} Hz ({prom_all:.0f} dB), lies "
+                    f"outside the band {lo:g}..{hi:g} Hz"
+                )
     if failures:
         reason = "not oscillating: " + "; ".join(failures)
     else:
         reason = (
-            f"oscillating at {freq:.6g} Hz, {vpp:.4g} Vpp, SNR {ana.snr_db:.1f} dB, "
+            f"oscillating at {freq:.6g} Hz, {vpp:.4g} Vpp, SNR {snr:.1f} dB, "
             f"prominence {prominence:.1f} dB"
         )
     return Detection(
         oscillating=not failures,
-        snr_db=ana.snr_db,
+        snr_db=snr,
         prominence_db=prominence,
         freq_hz=freq,
         vpp_v=vpp,

@@ -385,6 +385,12 @@ def fit_sine(y: ArrayLike, *, fs_hz: float, freq_hz: float | None = None) -> Sin
             raise ValueError(f"freq_hz={freq_hz!r} must be below fs_hz/2 = {0.5 * fs:g}")
         w0 = 2.0 * math.pi * f / fs
         fit_freq = False
+    return _fit_from(arr, fs, w0, fit_freq=fit_freq)
+
+
+def _fit_from(arr: NDArray[np.float64], fs: float, w0: float, *, fit_freq: bool) -> SineFit:
+    """Sine fit of a checked record from a start w0 (rad/sample); see :func:`fit_sine`."""
+    n = arr.size
     params, cov_u, sse, iterations = _sine_fit_kernel(arr, w0, fit_freq=fit_freq)
     a, b, c, w = (float(v) for v in params)
     n_par = 4 if fit_freq else 3
