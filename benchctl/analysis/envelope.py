@@ -55,6 +55,8 @@ class ModulationIndex:
         method Ac (1 +/- m)).
     mod_hz : float
         Modulating frequency, Hz.
+    u_mod_hz : float
+        Its standard uncertainty, Hz (0 when it was given).
     sideband_asymmetry_db : float
         Upper over lower sideband, dB (spectral method; 0 for the envelope method).
     method : str
@@ -69,6 +71,7 @@ class ModulationIndex:
     mod_hz: float
     sideband_asymmetry_db: float
     method: str
+    u_mod_hz: float = 0.0
 
 
 def envelope(
@@ -179,6 +182,7 @@ def modulation_index_envelope(
         mod_hz=fit.freq_hz,
         sideband_asymmetry_db=0.0,
         method=f"envelope (analytic signal), {fit.method} fit of the envelope",
+        u_mod_hz=fit.u_freq_hz * math.sqrt(infl_m),
     )
 
 
