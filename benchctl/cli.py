@@ -80,7 +80,14 @@ def _configure_logging(verbosity: int) -> None:
     import logging
 
     level = logging.WARNING if verbosity == 0 else logging.INFO if verbosity == 1 else logging.DEBUG
-    logging.basicConfig(level=level, format="%(asctime)s %(name)s %(levelname)s %(message)s", stream=sys.stderr)
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setLevel(level)  # the run's log file may take more (INFO) than the terminal shows
+    handler.setFormatter(logging.Formatter("%(asctime)s %(name)s %(levelname)s %(message)s"))
+    root = logging.getLogger()
+    root.setLevel(level)
+    if not any(getattr(h, "_benchctl", False) for h in root.handlers):
+        handler._benchctl = True  # type: ignore[attr-defined]
+        root.addHandler(handler)
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -17,7 +17,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from benchctl.errors import BenchError, ConfigError, ConfigErrors
+from benchctl.errors import BenchError, ConfigError, ConfigErrors, ConnectionLost
 
 from .base import DRIVERS, Instrument
 from .dialect import ROLES, Dialect, Identity, load_dialect
@@ -228,13 +228,31 @@ def _role(
 class Bench:
     """The three opened instruments and the wiring (see :func:`open_bench`)."""
 
-    def __init__(self, supply: Supply, generator: Generator, scope: Scope, wiring: Wiring, idn: dict[str, Identity], *, config: BenchConfig | None = None) -> None:
+    def __init__(self, supply: Supply, generator: Generator, scope: Scope, wiring: Wiring, idn: dict[str, Identity], *, config: BenchConfig | None = None, reopen: Callable[[str], Instrument] | None = None) -> None:
         self.supply = supply
         self.generator = generator
         self.scope = scope
         self.wiring = wiring
         self.idn = dict(idn)
         self.config = config
+        self._reopen = reopen
+
+    def reopen(self, role: str) -> Instrument:
+        """Close the session of ``role`` and open (and identify) a fresh one in its place.
+
+        Used to reach an instrument again after its connection dropped, e.g. to put the
+        bench in its safe state. Raises what opening raises (ConnectionLost, ...).
+        """
+        if self._reopen is None:
+            raise ConnectionLost(f"cannot reopen role {role!r}: bench opened without its configuration")
+        old = self.instruments[role]
+        try:
+            old.close()
+        except (BenchError, OSError):
+            pass  # the old session is gone anyway
+        inst = self._reopen(role)
+        setattr(self, role, inst)
+        return inst
 
     @property
     def instruments(self) -> dict[str, Instrument]:
@@ -288,32 +306,40 @@ def open_bench(
     """
     opened: dict[str, Instrument] = {}
     idn: dict[str, Identity] = {}
+
+    def open_role(role: str) -> Instrument:
+        rc = config.roles[role]
+        transport = opener(
+            rc.resource,
+            visa_library=config.visa_library,
+            timeout_s=rc.timeout_s,
+            read_termination=rc.dialect.read_termination,
+            write_termination=rc.dialect.write_termination,
+        )
+        kwargs: dict[str, Any] = {"strict": strict, "clock": clock, "sleep": sleep}
+        if role == "supply":
+            kwargs.update(max_voltage_v=max_voltage_v, channel=rc.channel)
+        elif role == "generator" and rc.channel is not None:
+            kwargs["channel"] = rc.channel
+        try:
+            inst = DRIVERS[role](transport, rc.dialect, **kwargs)
+        except BaseException:
+            transport.close()
+            raise
+        try:
+            idn[role] = inst.identify()  # the probe: a refused SOCKET fails here
+        except BaseException:
+            inst.close()
+            raise
+        return inst
+
     try:
         for role in ROLES:
-            rc = config.roles[role]
-            transport = opener(
-                rc.resource,
-                visa_library=config.visa_library,
-                timeout_s=rc.timeout_s,
-                read_termination=rc.dialect.read_termination,
-                write_termination=rc.dialect.write_termination,
-            )
-            kwargs: dict[str, Any] = {"strict": strict, "clock": clock, "sleep": sleep}
-            if role == "supply":
-                kwargs.update(max_voltage_v=max_voltage_v, channel=rc.channel)
-            elif role == "generator" and rc.channel is not None:
-                kwargs["channel"] = rc.channel
-            try:
-                inst = DRIVERS[role](transport, rc.dialect, **kwargs)
-            except BaseException:
-                transport.close()
-                raise
-            opened[role] = inst
-            idn[role] = inst.identify()  # the probe: a refused SOCKET fails here
+            opened[role] = open_role(role)
     except BaseException as exc:
         for inst in opened.values():
             inst.close()
         if isinstance(exc, BenchError) and not isinstance(exc, ConfigErrors):
             exc.add_note(f"while opening role {role!r} of bench {config.name!r}")
         raise
-    return Bench(opened["supply"], opened["generator"], opened["scope"], config.wiring, idn, config=config)  # type: ignore[arg-type]
+    return Bench(opened["supply"], opened["generator"], opened["scope"], config.wiring, idn, config=config, reopen=open_role)  # type: ignore[arg-type]

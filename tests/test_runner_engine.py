@@ -57,6 +57,14 @@ class FakeSupply:
     def is_output_on(self):
         return self.on
 
+    def protection_tripped(self):
+        return False
+
+    def check_errors(self):
+        self.calls.append(("supply", "check_errors"))
+
+    resource = "fake::supply"
+
 
 class FakeGenerator:
     def __init__(self, calls):
@@ -69,6 +77,9 @@ class FakeGenerator:
     def is_output_on(self):
         return self.on
 
+    def check_errors(self):
+        pass
+
 
 class FakeBench:
     def __init__(self, supply_fail_on=None):
@@ -79,6 +90,10 @@ class FakeBench:
         self.wiring = None
         self.idn = {"supply": "fake,supply,1,0", "generator": "fake,gen,2,0", "scope": "fake,scope,3,0"}
         self.closed = False
+
+    @property
+    def instruments(self):
+        return {"supply": self.supply, "generator": self.generator}
 
     def close(self):
         self.closed = True

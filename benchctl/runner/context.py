@@ -80,6 +80,7 @@ class RunContext:
         on_point: Callable[[StepRecord, Mapping[str, Any], bool], None],
         on_progress: Callable[[int, int | None, Mapping[str, Any] | None], None],
         log: logging.Logger,
+        check: Callable[[], None] = lambda: None,
     ) -> None:
         self._step = step
         self._columns = columns
@@ -95,6 +96,7 @@ class RunContext:
         self._abort = abort
         self._on_point = on_point
         self._on_progress = on_progress
+        self._check = check
         self.replayed = 0
         self.measured = 0
 
@@ -113,6 +115,7 @@ class RunContext:
         self.check_abort()
         raw = measure()
         row = self._clean(key, raw)
+        self._check()  # an instrument fault during the point: the point is not recorded
         self._folder.append_point(self._step.index, self._step.name, row, self._columns)
         self._step.rows[key] = row
         self.measured += 1

@@ -133,7 +133,7 @@ def execute(
         except (AbortRequested, KeyboardInterrupt) as exc:
             outcome = Outcome(status="aborted", exit_code=EXIT_FAULT, message=f"aborted: {exc or 'interrupted'}")
         except (InstrumentError, InstrumentTimeout, ConnectionLost, ProtocolError, OSError) as exc:
-            outcome = Outcome(status="failed", exit_code=EXIT_FAULT, message=f"instrument fault: {exc}")
+            outcome = Outcome(status="failed", exit_code=EXIT_FAULT, message=f"instrument fault ({type(exc).__name__}): {exc}")
         except ConfigError as exc:
             outcome = Outcome(status="failed", exit_code=EXIT_BAD_INPUT, message=str(exc))
         except (ProcedureBug, MeasurementError, BenchError) as exc:
@@ -187,12 +187,28 @@ def _run_step(step, plan, bench, folder, history, clock, abort, events, counts) 
         on_point=on_point,
         on_progress=lambda done, total, readings: events.step_progress(step.name, done, total, readings),
         log=log.getChild(step.name),
+        check=lambda: check_bench(bench),
     )
     results = proc.run(ctx, dict(step.params))
     record.results = {r.name: r for r in results}
     history[step.name] = record
     events.step_finished(step.name, record.results)
     return record
+
+
+def check_bench(bench: Any) -> None:
+    """After each point: every instrument's error queue, and the supply's protection latch.
+
+    Raises
+    ------
+    InstrumentError
+        An instrument queued an error, or the supply's over-voltage protection tripped.
+    """
+    for inst in bench.instruments.values():
+        inst.check_errors()
+    if bench.supply.protection_tripped():
+        raise InstrumentError(0, "over-voltage protection tripped; the supply output is off",
+                              resource=bench.supply.resource)
 
 
 def shared_result_names(plan: Plan) -> set[str]:

@@ -15,7 +15,7 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
 
-from benchctl.errors import BenchError, SafetyError
+from benchctl.errors import BenchError, ConnectionLost, SafetyError
 from benchctl.procedures.base import Limits
 
 _READBACK_REL_TOL = 0.02
@@ -70,29 +70,49 @@ def _check_readback(supply: Any, name: str, wanted: float, what: str, unit: str)
 
 
 def make_safe(bench: Any, limits: Limits, log: logging.Logger) -> SafeStateReport:
-    """Drive the bench to its safe state; never raises (failures are in the report)."""
-    report = SafeStateReport()
+    """Drive the bench to its safe state; never raises (failures are in the report).
 
-    def attempt(label: str, fn: Callable[[], Any]) -> Any:
+    A role whose connection dropped is reopened once (``bench.reopen(role)``) and its
+    sequence is tried again on the fresh session.
+    """
+    report = SafeStateReport()
+    lost: list[bool] = []
+
+    def attempt(label: str, fn: Callable[[], Any]) -> tuple[bool, Any]:
         try:
             value = fn()
             report.actions.append(label)
-            return value
+            return True, value
         except (BenchError, OSError) as exc:
             report.failures.append(f"{label}: {exc}")
+            lost.append(isinstance(exc, ConnectionLost | OSError))
             log.warning("safe state: %s failed: %s", label, exc)
-            return None
+            return False, exc
 
-    generator = getattr(bench, "generator", None)
-    supply = getattr(bench, "supply", None)
-    if generator is not None:
-        attempt("generator output off", lambda: generator.output(False))
-        state = attempt("generator readback", generator.is_output_on)
-        report.generator_off = None if state is None else not state
-    if supply is not None:
-        attempt("supply ramp down", lambda: supply.ramp_to(0.0, rate_v_per_s=limits.ramp_v_per_s))
-        attempt("supply output off", lambda: supply.output(False))
-        state = attempt("supply readback", supply.is_output_on)
-        report.supply_off = None if state is None else not state
+    def generator_off(gen: Any) -> bool | None:
+        attempt("generator output off", lambda: gen.output(False))
+        ok, state = attempt("generator readback", gen.is_output_on)
+        return (not state) if ok else None
+
+    def supply_off(sup: Any) -> bool | None:
+        attempt("supply ramp down", lambda: sup.ramp_to(0.0, rate_v_per_s=limits.ramp_v_per_s))
+        attempt("supply output off", lambda: sup.output(False))
+        ok, state = attempt("supply readback", sup.is_output_on)
+        return (not state) if ok else None
+
+    for role, sequence in (("generator", generator_off), ("supply", supply_off)):
+        inst = getattr(bench, role, None)
+        if inst is None:
+            continue
+        first_failure = len(report.failures)
+        lost.clear()
+        result = sequence(inst)
+        if result is None and any(lost) and hasattr(bench, "reopen"):
+            ok, fresh = attempt(f"{role} reconnect", lambda role=role: bench.reopen(role))
+            if ok:
+                log.info("safe state: %s reconnected after a dropped connection", role)
+                del report.failures[first_failure:]  # superseded by the retry on the new session
+                result = sequence(fresh)
+        setattr(report, f"{role}_off", result)
     log.info(report.summary())
     return report
