@@ -118,17 +118,16 @@ class Instrument:
     # ------------------------------------------------------------------ primitives
     def command(self, op: str, /, **values: Any) -> str:
         """Render and send the write operation ``op``; return the text sent."""
-        text = self.dialect.op(op).render(**values)
+        text = (self.dialect.operations.get(op) or self.dialect.op(op)).render(**values)
         self._write(text)
         return text
 
     def ask(self, op: str, /, **values: Any) -> Any:
         """Render the query ``op``, send it and return its parsed reply."""
-        operation = self.dialect.op(op)
+        operation = self.dialect.operations.get(op) or self.dialect.op(op)
         text = operation.render(**values)
-        retries = self.query_retries if operation.idempotent else 0
         try:
-            reply = self.transport.query(text, retries=retries)
+            reply = self.transport.query(text, retries=self.query_retries if operation.idempotent else 0)
         except InstrumentTimeout:
             # A query the instrument rejected gets no reply: say why if the queue knows.
             self._unchecked.append(text)

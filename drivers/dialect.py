@@ -86,6 +86,16 @@ _SCPI_INF = 9.9e37
 
 
 def _number(text: str, unit: str = "") -> float:
+    # fast path: a plain NR1/NR2/NR3 number (float() would also take "nan", "inf" or "1_0",
+    # which are not SCPI numbers: those end in a letter or hold "_" and take the slow path)
+    if text[-1:].isdigit() and "_" not in text:
+        try:
+            value = float(text)
+        except ValueError:
+            pass
+        else:
+            if abs(value) < _SCPI_INF:
+                return value
     m = _NUMBER_RE.match(text)
     if not m:
         raise ProtocolError("reply is not a number", text)
@@ -343,6 +353,12 @@ class Operation:
     false_word: str = "OFF"
     number_format: str = ".10g"
     words: Mapping[str, Mapping[str, str]] = field(default_factory=dict)
+    #: The command text when the template has no placeholders (rendered once).
+    _static: str | None = field(default=None, init=False, repr=False, compare=False)
+
+    def __post_init__(self) -> None:
+        if all(f is None for _, f, _, _ in _FORMATTER.parse(self.template)):
+            object.__setattr__(self, "_static", self.template.format_map({}))
 
     def render(self, **values: Any) -> str:
         """Return the command text with the placeholders filled in.
@@ -351,6 +367,8 @@ class Operation:
         ``true``/``false`` words; ``shape``/``coupling``/``slope`` go through its words
         tables. A placeholder with its own format spec (``{freq_hz:.3f}``) uses that.
         """
+        if not values and self._static is not None:
+            return self._static
         out = {}
         for key, value in values.items():
             kind = PLACEHOLDERS.get(key, "number")

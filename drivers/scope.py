@@ -33,8 +33,8 @@ Slope = Literal["rising", "falling"]
 TransferMode = Literal["int8", "int16", "ascii"]
 #: Extreme codes of an 8-bit ADC: a sample there is at a screen edge (clipped).
 _ADC8_MIN, _ADC8_MAX = -128, 127
-#: Samples decoded at a time while a block arrives (cache-sized pieces decode fastest).
-_DECODE_MIN_SAMPLES = 65536
+#: Samples decoded at a time (cache-sized pieces decode fastest).
+_DECODE_PIECE = 65536
 
 
 @dataclass(frozen=True)
@@ -144,41 +144,33 @@ def dominant_frequency(volts: np.ndarray, dt_s: float) -> float:
     return float((k + delta) / (n * dt_s))
 
 
-class _BlockDecoder:
-    """Turns block codes into volts piece by piece while the block is still arriving.
+def decode_codes(
+    payload: bytes | bytearray, dtype: np.dtype, *, dy_v: float, y0_v: float, clip_lo: int, clip_hi: int
+) -> tuple[np.ndarray, int]:
+    """Turn block codes into volts and count the codes at either screen edge.
 
     ``volts = code * dy + y0`` with the code as transferred (wire contract, DEVELOPERS.md).
+    The work goes in cache-sized pieces, with one byte swap per piece for big-endian data.
+
+    Returns
+    -------
+    (volts, clipped) : (numpy.ndarray of float64, int)
     """
-
-    def __init__(self, points: int, dtype: np.dtype, dy_v: float, y0_v: float, *, clip_lo: int, clip_hi: int) -> None:
-        self.volts = np.empty(points, dtype=np.float64)
-        self.dtype = dtype
-        self.dy_v = float(dy_v)
-        self.y0_v = float(y0_v)
-        self.clip_lo = clip_lo
-        self.clip_hi = clip_hi
-        self.clipped = 0  # codes at either extreme (the screen edges)
-        self.done = 0  # samples decoded
-
-    def __call__(self, buffer: bytearray, n_bytes: int) -> None:
-        upto = min(n_bytes // self.dtype.itemsize, self.volts.size)
-        if upto - self.done < _DECODE_MIN_SAMPLES and upto < self.volts.size:
-            return  # wait for a worthwhile, cache-sized piece
-        codes = np.frombuffer(buffer, dtype=self.dtype, count=upto - self.done, offset=self.done * self.dtype.itemsize)
-        if not self.dtype.isnative:
-            codes = codes.astype(self.dtype.newbyteorder("="))  # one swap, then native speed
-        part = self.volts[self.done : upto]
-        np.multiply(codes, self.dy_v, out=part)
-        if self.y0_v:
-            part += self.y0_v
-        if codes.size and (codes.min() <= self.clip_lo or codes.max() >= self.clip_hi):
-            self.clipped += int(np.count_nonzero(codes <= self.clip_lo) + np.count_nonzero(codes >= self.clip_hi))
-        self.done = upto
-
-    def finish(self, payload: bytes | bytearray) -> np.ndarray:
-        if self.done < self.volts.size:
-            self(bytearray(payload) if isinstance(payload, bytes) else payload, len(payload))
-        return self.volts
+    codes_all = np.frombuffer(payload, dtype=dtype)
+    volts = np.empty(codes_all.size, dtype=np.float64)
+    clipped = 0
+    native = dtype.newbyteorder("=")
+    for i in range(0, codes_all.size, _DECODE_PIECE):
+        codes = codes_all[i : i + _DECODE_PIECE]
+        if not dtype.isnative:
+            codes = codes.astype(native)
+        part = volts[i : i + _DECODE_PIECE]
+        np.multiply(codes, dy_v, out=part)
+        if y0_v:
+            part += y0_v
+        if codes.min() <= clip_lo or codes.max() >= clip_hi:
+            clipped += int(np.count_nonzero(codes <= clip_lo) + np.count_nonzero(codes >= clip_hi))
+    return volts, clipped
 
 
 @register_driver("scope")
@@ -358,10 +350,11 @@ class Scope(Instrument):
             else:
                 dtype = np.dtype("i1")
                 lo, hi = _ADC8_MIN, _ADC8_MAX
-            decoder = _BlockDecoder(points, dtype, scale["dy_v"], scale["y0_v"], clip_lo=lo, clip_hi=hi)
-            payload = self.transport.read_block(text, expected_bytes=points * width, on_data=decoder)
-            volts = decoder.finish(payload)
-            clipped = decoder.clipped  # counted from the codes themselves: no extra query
+            payload = self.transport.read_block(text, expected_bytes=points * width)
+            volts, clipped = decode_codes(
+                payload, dtype, dy_v=scale["dy_v"], y0_v=scale["y0_v"], clip_lo=lo, clip_hi=hi
+            )
+            # clipped samples counted from the codes themselves: no extra query
         if clipped is None:
             if self.dialect.has("clipped"):
                 clipped = int(self.ask("clipped", channel=channel))

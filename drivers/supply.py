@@ -39,9 +39,14 @@ class Supply(Instrument):
         super().__init__(transport, dialect, **kwargs)
         if not (math.isfinite(max_voltage_v) and max_voltage_v > 0):
             raise ValueError(f"{max_voltage_v=} must be a finite voltage > 0")
-        self.max_voltage_v = float(max_voltage_v)
+        self._max_voltage_v = float(max_voltage_v)
         self._ch = {} if channel is None else {"channel": int(channel)}
         self._last_set: tuple[float, float] | None = None  # (clock s, setpoint V)
+
+    @property
+    def max_voltage_v(self) -> float:
+        """The setpoint limit this driver was opened with, V (read-only)."""
+        return self._max_voltage_v
 
     # ------------------------------------------------------------------ setpoints
     def _check_voltage(self, voltage_v: float, what: str) -> float:

@@ -39,7 +39,6 @@ import re
 import select
 import socket
 import time
-from collections.abc import Callable
 from dataclasses import dataclass
 
 import pyvisa
@@ -59,9 +58,6 @@ TEXT_CHUNK_BYTES = 64 * 1024
 BLOCK_CHUNK_BYTES = 1024 * 1024
 #: Quiet time that ends a drain before a retry, and before the first exchange after a timeout, s.
 RETRY_QUIET_S = 0.1
-#: Largest single receive of block payload: small enough that decoding one piece overlaps
-#: with the arrival of the next.
-DECODE_CHUNK_BYTES = 256 * 1024
 RESYNC_QUIET_S = 0.02
 
 _RESOURCE_RE = re.compile(
@@ -199,7 +195,7 @@ class Transport:
                 self._resync()
             t0 = time.perf_counter()
             try:
-                reply = self._res.query(message)
+                reply = self._res.query(message)  # pyvisa: write, then read to the terminator
             except (VisaIOError, OSError, UnicodeDecodeError) as exc:
                 err = self._convert(exc, message)
                 if isinstance(err, InstrumentTimeout) and attempt < retries:
@@ -220,13 +216,7 @@ class Transport:
                 )
             return reply
 
-    def read_block(
-        self,
-        message: str,
-        *,
-        expected_bytes: int | None = None,
-        on_data: Callable[[bytearray, int], None] | None = None,
-    ) -> bytes | bytearray:
+    def read_block(self, message: str, *, expected_bytes: int | None = None) -> bytes | bytearray:
         """Send ``message`` and read its IEEE 488.2 definite-length block reply fast.
 
         The header ``#<n><length>`` is read with the termination character on, then exactly
@@ -240,9 +230,6 @@ class Transport:
         expected_bytes : int or None
             Payload size the caller expects (points x sample width); needed for an
             indefinite ``#0`` block, and checked against a definite block's declared length.
-        on_data : callable, optional
-            ``on_data(buffer, n_bytes)`` is called as the payload arrives (buffer holds the
-            first ``n_bytes``), so a caller can decode while the rest is still in flight.
 
         Returns
         -------
@@ -283,7 +270,7 @@ class Transport:
                     f"{self.resource}: block declares {length} bytes, expected {expected_bytes}",
                     head + digits,
                 )
-        payload = self._read_payload(length, message, on_data)
+        payload = self._read_payload(length, message)
         tail = self._read_exact(1, message)
         if tail not in (b"\n", b"\r"):
             self.drain()
@@ -353,69 +340,81 @@ class Transport:
         self.close()
 
     # ------------------------------------------------------------------ internals
-    def _read_exact(self, count: int, message: str) -> bytes:
-        try:
-            return bytes(self._res.read_bytes(count))
-        except (VisaIOError, OSError) as exc:
-            raise self._convert(exc, message) from exc
-
-    def _read_payload(
-        self, length: int, message: str, on_data: Callable[[bytearray, int], None] | None = None
-    ) -> bytes | bytearray:
+    def _socket_path(self) -> tuple[socket.socket, bytearray] | None:
+        """The pyvisa-py session's socket and pending buffer, if they can be reached."""
         sock = getattr(self._session, "interface", None)
         pending = getattr(self._session, "_pending_buffer", None)
         if isinstance(sock, socket.socket) and isinstance(pending, bytearray):
-            return self._read_payload_socket(sock, pending, length, message, on_data)
-        payload = bytearray(self._read_payload_visa(length, message))
-        if on_data is not None:
-            on_data(payload, len(payload))
-        return payload
+            return sock, pending
+        return None
 
-    def _read_payload_socket(
-        self,
-        sock: socket.socket,
-        pending: bytearray,
-        length: int,
-        message: str,
-        on_data: Callable[[bytearray, int], None] | None,
-    ) -> bytearray:
-        """Read exactly ``length`` payload bytes straight from the session's socket.
+    def _fill(self, path: tuple[socket.socket, bytearray], out: bytearray, message: str) -> None:
+        """Fill ``out`` exactly from what pyvisa-py buffered, then from the socket in place.
 
-        What pyvisa-py already buffered is taken first; the rest is received in place
-        (``recv_into``, no copies), never past the payload, so the terminator stays for
-        the next read. The termination character plays no part here.
+        Never reads past ``len(out)``, so what follows stays for the next read.
+
+        Raises
+        ------
+        InstrumentTimeout
+            Not enough bytes within the timeout (carries the count received in
+            ``.received``).
+        ConnectionLost
+            The peer closed the connection.
         """
-        out = bytearray(length)
+        sock, pending = path
+        length = len(out)
         view = memoryview(out)
         got = min(len(pending), length)
-        view[:got] = pending[:got]
-        del pending[:got]
+        if got:
+            view[:got] = pending[:got]
+            del pending[:got]
         deadline = time.monotonic() + self._timeout_s
         try:
             while got < length:
                 remaining_s = deadline - time.monotonic()
                 if remaining_s <= 0:
-                    self.drain()
-                    raise ProtocolError(
-                        f"{self.resource}: block shorter than its declared {length} bytes "
-                        f"(got {got} within {self._timeout_s:g} s)",
-                        message,
-                    )
+                    self._dirty = True
+                    err = InstrumentTimeout("no complete reply", message, self.resource, self._timeout_s)
+                    err.received = got  # type: ignore[attr-defined]
+                    raise err
                 ready, _, _ = select.select([sock], [], [], remaining_s)
                 if not ready:
                     continue
-                n = sock.recv_into(view[got:], min(length - got, DECODE_CHUNK_BYTES))
+                n = sock.recv_into(view[got:], length - got)
                 if n == 0:
-                    raise ConnectionLost("connection closed inside a block", message, self.resource)
+                    raise ConnectionLost("connection closed by the instrument", message, self.resource)
                 got += n
-                if on_data is not None:
-                    on_data(out, got)
         except OSError as exc:
             raise self._convert(exc, message) from exc
         finally:
             view.release()
-        if on_data is not None and length == 0:
-            on_data(out, 0)
+
+    def _read_exact(self, count: int, message: str) -> bytes:
+        path = self._socket_path()
+        if path is not None:
+            out = bytearray(count)
+            self._fill(path, out, message)
+            return bytes(out)
+        try:
+            return bytes(self._res.read_bytes(count))
+        except (VisaIOError, OSError) as exc:
+            raise self._convert(exc, message) from exc
+
+    def _read_payload(self, length: int, message: str) -> bytes | bytearray:
+        """Read exactly ``length`` payload bytes; the termination character plays no part."""
+        path = self._socket_path()
+        if path is None:
+            return self._read_payload_visa(length, message)
+        out = bytearray(length)
+        try:
+            self._fill(path, out, message)
+        except InstrumentTimeout as exc:
+            self.drain()
+            raise ProtocolError(
+                f"{self.resource}: block shorter than its declared {length} bytes "
+                f"(got {getattr(exc, 'received', '?')} within {self._timeout_s:g} s)",
+                message,
+            ) from exc
         return out
 
     def _read_payload_visa(self, length: int, message: str) -> bytes:

@@ -20,7 +20,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from benchctl.drivers import load_bench_text, load_dialect, open_bench
+from benchctl.drivers import Supply, load_bench_text, load_dialect, open_bench
 from benchctl.drivers.scope import dominant_frequency, noise_sigma
 from benchctl.errors import ConfigErrors, InstrumentError, SafetyError
 from benchctl.scpi import CommandTree, ErrorQueue, encode_block, format_nr3
@@ -397,16 +397,18 @@ def test_alt_supply_refuses_setpoint_above_limit_before_sending(alt_bench) -> No
 def test_alt_instrument_error_names_the_command(alt_bench) -> None:
     server, bench = alt_bench
     # 33 V exceeds the server's maximum of 30 V: SCPI -222 "Data out of range"
-    # (SCPI-1999 vol. 2, 21.8.6, from memory). The driver's limit is lifted to reach it.
-    bench.supply.max_voltage_v = 40.0
-    bench.supply.set_voltage(33.0)  # fast mode: not checked yet
+    # (SCPI-1999 vol. 2, 21.8.6, from memory). A driver opened with a 40 V limit reaches it.
+    with pytest.raises(AttributeError):
+        bench.supply.max_voltage_v = 40.0  # the limit it was opened with cannot be lifted
+    wide = Supply(bench.supply.transport, bench.supply.dialect, max_voltage_v=40.0)
+    wide.set_voltage(33.0)  # fast mode: not checked yet
     with pytest.raises(InstrumentError) as info:
-        bench.supply.output(True)  # a point of consequence
+        wide.output(True)  # a point of consequence
     assert info.value.code == -222
     assert "PSU:VSET 33.0000V" in info.value.command
-    bench.supply.strict = True
+    wide.strict = True
     with pytest.raises(InstrumentError) as info:
-        bench.supply.set_voltage(31.0)
+        wide.set_voltage(31.0)
     assert info.value.code == -222 and info.value.command == "PSU:VSET 31.0000V"
 
 
