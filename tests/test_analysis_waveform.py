@@ -281,3 +281,12 @@ def test_fit_of_short_records_stays_statistically_honest(cycles):
         fit = fit_sine(y + rng.normal(0, 0.01, n), fs_hz=1.0)
         assert abs(fit.vpp_v - 2.0) < 4 * fit.u_vpp_v + 1e-12
         assert abs(fit.freq_hz - f_hz) < 4 * fit.u_freq_hz + 1e-12
+
+
+def test_robust_amplitude_of_a_record_without_a_sine():
+    # a flat record: the robust Vpp is 0 and there is no frequency; the fit refuses
+    flat = np.full(256, 0.125)
+    res = measure_amplitude(flat, fs_hz=FS_HZ, method="robust")
+    assert res.vpp_v == 0.0 and math.isnan(res.freq_hz) and res.offset_v == 0.125
+    with pytest.raises(MeasurementError, match="flat"):
+        measure_amplitude(flat, fs_hz=FS_HZ)

@@ -569,31 +569,36 @@ def measure_amplitude(
     MeasurementError
         The record is clipped, too short, or flat.
     """
+    if method not in ("fit", "robust"):
+        raise ValueError(f"method={method!r} must be 'fit' or 'robust'")
     arr = as_record(y, min_samples=_MIN_FIT_SAMPLES)
     refuse_if_clipped(clipped_samples, arr.size, max_fraction=max_clipped_fraction)
-    fit = fit_sine(arr, fs_hz=fs_hz, freq_hz=freq_hz)
-    if method == "fit":
-        return AmplitudeMeasurement(
-            vpp_v=fit.vpp_v,
-            u_vpp_v=fit.u_vpp_v,
-            freq_hz=fit.freq_hz,
-            u_freq_hz=fit.u_freq_hz,
-            offset_v=fit.offset_v,
-            u_offset_v=fit.u_offset_v,
-            method=fit.method,
-            n_samples=arr.size,
-        )
     if method == "robust":
         est = vpp_robust(arr)
         mean = dc(arr)
+        try:
+            fit = fit_sine(arr, fs_hz=fs_hz, freq_hz=freq_hz)
+            f, u_f = fit.freq_hz, fit.u_freq_hz
+        except MeasurementError:  # no sine to fit (flat, or not periodic): no frequency
+            f, u_f = math.nan, math.nan
         return AmplitudeMeasurement(
             vpp_v=est.value,
             u_vpp_v=est.u,
-            freq_hz=fit.freq_hz,
-            u_freq_hz=fit.u_freq_hz,
+            freq_hz=f,
+            u_freq_hz=u_f,
             offset_v=mean.value,
             u_offset_v=mean.u,
             method=est.method,
             n_samples=arr.size,
         )
-    raise ValueError(f"method={method!r} must be 'fit' or 'robust'")
+    fit = fit_sine(arr, fs_hz=fs_hz, freq_hz=freq_hz)
+    return AmplitudeMeasurement(
+        vpp_v=fit.vpp_v,
+        u_vpp_v=fit.u_vpp_v,
+        freq_hz=fit.freq_hz,
+        u_freq_hz=fit.u_freq_hz,
+        offset_v=fit.offset_v,
+        u_offset_v=fit.u_offset_v,
+        method=fit.method,
+        n_samples=arr.size,
+    )
