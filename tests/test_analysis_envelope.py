@@ -105,3 +105,18 @@ def test_modulation_index_of_a_non_coherent_record():
     by_spec = modulation_index_spectrum(y, fs_hz=FS_HZ, carrier_hz=9_876.5, mod_hz=433.3)
     assert by_env.m == pytest.approx(0.25, abs=2e-3)
     assert by_spec.m == pytest.approx(0.25, rel=1e-9)
+
+
+def test_envelope_modulation_uncertainty_matches_the_spread():
+    # the envelope's noise is coloured; the reported u_m must still match the spread of m
+    # over 20 seeded records (within 40 %), and agree with the spectral method's
+    ms, us, us_spec = [], [], []
+    for seed in range(20):  # bounded
+        y = am(0.3, noise_v=0.01, seed=100 + seed)
+        res = modulation_index_envelope(y, fs_hz=FS_HZ, carrier_hz=10_000.0)
+        ms.append(res.m)
+        us.append(res.u_m)
+        us_spec.append(modulation_index_spectrum(y, fs_hz=FS_HZ, carrier_hz=10_000.0,
+                                                 mod_hz=500.0).u_m)
+    assert np.std(ms, ddof=1) == pytest.approx(np.mean(us), rel=0.4)
+    assert np.mean(us) == pytest.approx(np.mean(us_spec), rel=0.4)
