@@ -15,6 +15,7 @@ from benchctl import analysis
 from benchctl.errors import ConfigError
 from benchctl.procedures.base import Param, Procedure, Result, register
 from benchctl.procedures.common import RailTracker, check_rail, rail_grid
+from benchctl.procedures.measure import ScopeMemory
 from benchctl.procedures.rail_sweep import (
     MEASURE_PARAMS,
     SWEEP_COLUMNS,
@@ -110,5 +111,6 @@ class LinearRegion(Procedure):
         grid = rail_grid(start_v, stop_v, float(params["step_v"]))
         tracker = RailTracker(ctx, settling(params))
         rows = sweep_points(ctx, tracker, measure_options(params), grid, branch="up", tag="",
-                            round_no=0, floor_v=start_v, top_v=stop_v, total=len(grid))
+                            round_no=0, floor_v=start_v, top_v=stop_v, total=len(grid),
+                            memory=ScopeMemory())
         return region_results(list(rows), params)

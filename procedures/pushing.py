@@ -18,6 +18,7 @@ from benchctl import analysis
 from benchctl.errors import ConfigError, MeasurementError
 from benchctl.procedures.base import Column, Param, Procedure, Result, register
 from benchctl.procedures.common import RailTracker, check_rail, point_key, rail_grid
+from benchctl.procedures.measure import ScopeMemory
 from benchctl.procedures.rail_sweep import (
     MEASURE_PARAMS,
     SWEEP_COLUMNS,
@@ -128,7 +129,7 @@ class Pushing(Procedure):
             tracker = RailTracker(ctx, settling(params))
             measured = sweep_points(ctx, tracker, measure_options(params), grid, branch="up",
                                     tag="", round_no=0, floor_v=start_v, top_v=stop_v,
-                                    total=len(grid))
+                                    total=len(grid), memory=ScopeMemory())
             rows = [dict(r, source="") for r in measured]
         up_rows = [r for r in rows if r.get("branch", "up") == "up"] or rows
         lo, hi, where = _fit_window(ctx, params, source)

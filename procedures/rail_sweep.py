@@ -28,7 +28,12 @@ from benchctl.procedures.common import (
     rail_grid,
     refine_rails,
 )
-from benchctl.procedures.measure import OUTPUT_COLUMNS, MeasureOptions, measure_output
+from benchctl.procedures.measure import (
+    OUTPUT_COLUMNS,
+    MeasureOptions,
+    ScopeMemory,
+    measure_output,
+)
 
 SWEEP_COLUMNS: tuple[Column, ...] = (
     Column("branch", "", "up (approached from below) or down (from above, after running)"),
@@ -73,6 +78,7 @@ def sweep_points(
     top_v: float,
     done: int = 0,
     total: int | None = None,
+    memory: ScopeMemory | None = None,
 ) -> list[Mapping[str, Any]]:
     """Measure ``rails`` in the given order on one branch; returns the rows."""
     rows = []
@@ -83,7 +89,7 @@ def sweep_points(
 
         def measure(rail_v: float = rail_v) -> dict[str, Any]:
             tracker.at(rail_v, branch=side, floor_v=floor_v, top_v=top_v)  # type: ignore[arg-type]
-            row = measure_output(ctx, opts, rail_set_v=rail_v)
+            row = measure_output(ctx, opts, rail_set_v=rail_v, memory=memory)
             row.update(branch=branch, round=round_no)
             return row
 
@@ -105,6 +111,7 @@ def run_branch(
     stop_v: float,
     done: int = 0,
     total: int | None = None,
+    memory: ScopeMemory | None = None,
 ) -> list[Mapping[str, Any]]:
     """The grid of one branch, then (``params["adaptive"]``) refinement rounds."""
     lo, hi = min(start_v, stop_v), max(start_v, stop_v)
@@ -112,7 +119,7 @@ def run_branch(
     if branch == "down":
         grid = grid[::-1]
     rows = list(sweep_points(ctx, tracker, opts, grid, branch=branch, tag="", round_no=0,
-                             floor_v=lo, top_v=hi, done=done, total=total))
+                             floor_v=lo, top_v=hi, done=done, total=total, memory=memory))
     if not params.get("adaptive", False):
         return rows
     max_points = int(params["max_points"])
@@ -129,7 +136,7 @@ def run_branch(
             new = new[::-1]
         rows += sweep_points(ctx, tracker, opts, new, branch=branch, tag=f"r{round_no}",
                              round_no=round_no, floor_v=lo, top_v=hi, done=done + len(rows),
-                             total=total)
+                             total=total, memory=memory)
     return sorted(rows, key=lambda r: r["rail_set_v"])
 
 
@@ -219,11 +226,14 @@ class RailSweep(Procedure):
         tracker = RailTracker(ctx, settling(params))
         n_grid = len(rail_grid(start_v, stop_v, float(params["step_v"])))
         total = n_grid * (2 if params["down"] else 1)
+        memory = ScopeMemory()
         rows = list(run_branch(ctx, tracker, opts, params, branch="up", start_v=start_v,
-                               stop_v=stop_v, total=total))
+                               stop_v=stop_v, total=total, memory=memory))
         if params["down"]:
             rows += run_branch(ctx, tracker, opts, params, branch="down", start_v=start_v,
-                               stop_v=stop_v, done=len(rows), total=total)
+                               stop_v=stop_v, done=len(rows), total=total, memory=memory)
+        ctx.log.info("rail_sweep: %d autoscales, %d points measured with the previous set-up",
+                     memory.autoscales, memory.reused)
         step = "adaptive sweep" if params["adaptive"] else "sweep"
         results = [
             bracket_result("startup_v", flip_bracket(rows, branch="up"), what="start-up",
