@@ -85,7 +85,8 @@ def add_command(subparsers: argparse._SubParsersAction) -> None:
     p.add_argument("--visa-library", default="@py", help="pyvisa backend (default: @py, i.e. pyvisa-py)")
     p.add_argument("--timeout", type=float, default=1.0, metavar="SECONDS", help="per-resource timeout (default 1 s)")
     p.add_argument("--json", action="store_true", help="print JSON instead of a table")
-    p.add_argument("--no-scan", action="store_true", help="probe only the resources given (do not ask the VISA library)")
+    p.add_argument("--no-scan", action="store_true", help="probe only the resources given; without it the VISA "
+                   "library is asked for its list (pyvisa-py broadcasts on the local network for TCPIP)")
     p.add_argument("--crlf", action="store_true", help="instruments terminate with \\r\\n instead of \\n")
     p.set_defaults(func=run_discover)
 

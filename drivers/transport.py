@@ -39,6 +39,7 @@ import re
 import select
 import socket
 import time
+import warnings
 from dataclasses import dataclass
 
 import pyvisa
@@ -100,10 +101,18 @@ def _manager(visa_library: str) -> pyvisa.ResourceManager:
 
 
 def list_resources(*, visa_library: str = "@py", query: str = "?*::INSTR") -> tuple[str, ...]:
-    """Return the resource strings the VISA library can list (SOCKET resources never appear)."""
+    """Return the resource strings the VISA library can list (SOCKET resources never appear).
+
+    Note that pyvisa-py looks for TCPIP instruments with a broadcast on the local network.
+    """
     rm = _manager(visa_library)
     try:
-        return tuple(rm.list_resources(query))
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            found = tuple(rm.list_resources(query))
+        for w in caught:  # the backend's hints about optional packages: log, do not print
+            logger.info("listing resources: %s", w.message)
+        return found
     except VisaIOError as exc:
         if exc.error_code == constants.StatusCode.error_resource_not_found:
             return ()

@@ -300,3 +300,39 @@ def test_fault_corrupt_block_is_a_protocol_error(fast, mode: str) -> None:
     assert time.monotonic() - t0 < 2.0
     again = sc.fetch(1)  # the session resynchronises
     np.testing.assert_array_equal(again.volts, good.volts)
+
+
+def test_rejected_query_is_an_instrument_error_not_a_bare_timeout(sim_bench, tmp_path) -> None:
+    # A dialect with a misspelt query: the instrument queues -113 "Undefined header" and
+    # sends nothing (IEEE 488.2-1992 6.1.6 / SCPI-1999 vol. 2 21.8.4, from memory).
+    (tmp_path / "typo.toml").write_text(
+        '[dialect]\nextends = "scpi1999"\n[supply]\nmeasure_voltage = { query = "MEASure:VOLTage:DCC?" }\n',
+        encoding="utf-8",
+    )
+    text = sim_bench.bench_toml().replace('dialect = "scpi1999"', 'dialect = "typo.toml"', 1)
+    cfg = load_bench_text(text, base_dir=tmp_path)
+    for strict in (False, True):
+        with open_bench(cfg, max_voltage_v=6.0, strict=strict) as b:
+            b.supply.transport.timeout_s = 0.3
+            b.supply.query_retries = 0
+            with pytest.raises(InstrumentError) as info:
+                b.supply.measure_voltage()
+            assert info.value.code == -113 and "MEASure:VOLTage:DCC?" in info.value.command
+
+
+def test_discover_against_the_simulated_bench(sim_bench) -> None:
+    import io
+    import json
+
+    from rich.console import Console
+
+    from benchctl.cli import main
+
+    buf = io.StringIO()
+    resources = list(sim_bench.resources.values())
+    code = main(["discover", "--no-scan", "--json", *resources], Console(file=buf, width=300))
+    assert code == 0
+    rows = json.loads(buf.getvalue())["resources"]
+    assert [r["resource"] for r in rows] == resources
+    assert [r["model"] for r in rows] == ["SIM-DC-SUPPLY", "SIM-FUNC-GEN", "SIM-SCOPE-2CH"]
+    assert all(r["ok"] and r["maker"] == "benchctl" for r in rows)
