@@ -217,3 +217,39 @@ def test_faint_onset_repeats_only_near_the_threshold_and_still_brackets_it(rig, 
     assert all(abs(r["rail_set_v"] - truth.dropout_v) < 0.03 for r in repeated)
     assert repeated
     assert len(probes) <= math.log2(0.9 / 0.005) + 4
+
+
+def test_modulation_refuses_a_depth_that_would_lift_the_rail_over_the_limit(rig):
+    from benchctl.errors import SafetyError
+
+    sim, bench = rig("beacon", 8, "B0008")
+    before = {role: len(sim.command_log(role)) for role in ("supply", "generator", "scope")}
+    with pytest.raises(SafetyError, match=r"max_rail_v"):
+        # 5.5 V + 1.2 Vpp / 2 = 6.1 V > 6.0 V: refused before anything is sent
+        _run(bench, "modulation", centre_v=5.5, depths_vpp=[0.2, 1.2])
+    for role, n in before.items():
+        sent = sim.command_log(role)[n:]
+        # only the test's own clean-up (outputs off) and the drivers' error-queue checks
+        assert all(c.endswith(" OFF") or c.startswith("SYST") for c in sent), (role, sent)
+    assert sim.supply_state()["setpoint_v"] == 0.0
+    assert sim.generator_state()["output_on"] is False
+
+
+def test_an_abort_between_modulation_points_leaves_the_generator_off(rig):
+    from benchctl.errors import AbortRequested
+
+    sim, bench = rig("beacon", 9, "B0009")
+
+    class AbortAfter(DictContext):
+        def check_abort(self):
+            if len(self.rows) >= 5:  # three static points and two depths done
+                raise AbortRequested("test abort")
+
+    ctx = AbortAfter(bench)
+    ctx.clock = StepClock()
+    proc, params = _params("modulation", centre_v=4.4)
+    with pytest.raises(AbortRequested):
+        proc.run(ctx, params)
+    assert len(ctx.rows) == 5
+    assert sim.generator_state()["output_on"] is False
+    bench.supply.output(False)
