@@ -171,11 +171,15 @@ class DropoutStartup(Procedure):
 
         earlier = _earlier_setup_row(ctx, params["source"], running_v) if params["source"] else None
         if earlier is not None:
+            reading: Mapping[str, Any] = earlier
             setup = setup_from_reading(earlier, cycles=float(params["probe_cycles"]),
                                        samples_per_cycle=float(params["samples_per_cycle"]))
         else:
-            setup = setup_from_row(ctx.point("setup", measure_setup))
-        freq = finite_or_none((earlier or {}).get("freq_hz"))
+            reading = ctx.point("setup", measure_setup)
+            setup = setup_from_row(reading)
+        # The carrier must stay within an octave of the running board's: a line elsewhere
+        # (a spur, mains pick-up) does not count as oscillating.
+        freq = finite_or_none(reading.get("freq_hz"))
         if freq:
             band = (0.5 * freq, 2.0 * freq)
         clear_db = float(params["clear_margin_db"])
