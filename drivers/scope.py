@@ -122,10 +122,16 @@ def noise_sigma(volts: np.ndarray) -> float:
     return float(np.median(np.abs(d3 - np.median(d3))) / 0.6745 / math.sqrt(20.0))
 
 
-def dominant_frequency(volts: np.ndarray, dt_s: float) -> float:
-    """Frequency of the strongest spectral line, Hz (nan if none), by a Hann-windowed DFT
-    with parabolic interpolation of the log-magnitude peak (common practice, no published
-    source beyond textbook interpolated-DFT estimators)."""
+def dominant_frequency(volts: np.ndarray, dt_s: float, *, min_peak_ratio: float = 20.0) -> float:
+    """Frequency of the strongest spectral line, Hz, by a Hann-windowed DFT with parabolic
+    interpolation of the log-magnitude peak (common practice, no published source beyond
+    textbook interpolated-DFT estimators).
+
+    Returns nan when there is no line: the peak magnitude must be at least
+    ``min_peak_ratio`` times the median magnitude. For white noise alone the largest of M
+    bins is about sqrt(ln M) times the RMS magnitude (exponential power distribution),
+    i.e. 3-4x the median for records up to ~10^6 samples, so 20x means a real line.
+    """
     x = np.asarray(volts, dtype=float)
     n = x.size
     if n < 16:
@@ -133,7 +139,8 @@ def dominant_frequency(volts: np.ndarray, dt_s: float) -> float:
     spec = np.abs(np.fft.rfft((x - x.mean()) * np.hanning(n)))
     spec[0] = 0.0
     k = int(np.argmax(spec))
-    if k < 1 or spec[k] <= 1e-12 * (np.abs(x).max() + 1e-30) * n:
+    floor = float(np.median(spec[1:]))
+    if k < 1 or spec[k] <= 1e-12 * (np.abs(x).max() + 1e-30) * n or spec[k] < min_peak_ratio * floor:
         return math.nan
     if 1 <= k < spec.size - 1 and spec[k - 1] > 0 and spec[k + 1] > 0:
         a, b, c = np.log(spec[k - 1]), np.log(spec[k]), np.log(spec[k + 1])
@@ -391,6 +398,7 @@ class Scope(Instrument):
         points: int = 10_000,
         start_scale_v_div: float = 2.0,
         max_scale_v_div: float = 50.0,
+        min_scale_v_div: float = 1e-3,
         first_window_s: float = 1e-3,
         target_div: float = 6.0,
         noise_sigmas: float = 4.0,
@@ -408,6 +416,9 @@ class Scope(Instrument):
            side (8-bit quantisation is then a small fraction of the signal).
         3. Estimate the frequency (interpolated DFT peak) and set the window to
            ``cycles`` periods at ``points`` samples; re-acquire until nothing clips.
+           With fewer than ~1.5 periods in the record the window grows x10 (twice at
+           most); a record with no spectral line (a board that is off) keeps its window
+           and gives ``freq_hz = nan``. The scale never goes below ``min_scale_v_div``.
 
         Returns
         -------
@@ -458,12 +469,12 @@ class Scope(Instrument):
             sigma_signal = math.sqrt(max(sigma**2 - q_v**2 / 12, 0.0))
             offset_new = 0.5 * (hi + lo)
             half_span = 0.5 * vpp + noise_sigmas * sigma_signal
-            scale_new = max(half_span / (target_div / 2), 1e-6)
+            scale_new = max(half_span / (target_div / 2), min_scale_v_div)
             f_est = dominant_frequency(wf.volts, wf.dt_s)
             if math.isfinite(f_est) and f_est * window_s >= 1.5:
                 freq_hz = f_est
                 window_new = cycles / freq_hz
-            elif grows < 3:  # fewer than ~1.5 periods seen: look at a 10x longer window
+            elif grows < 2:  # fewer than ~1.5 periods seen: look at a 10x longer window
                 grows += 1
                 window_new = window_s * 10.0
             else:  # no periodic component found: keep the window

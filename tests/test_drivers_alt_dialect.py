@@ -512,3 +512,14 @@ def test_broken_alt_dialect_is_a_load_time_error(tmp_path: Path) -> None:
     assert (str(path), "supply.set_voltage.write") in keys
     assert (str(path), "supply.measure_current") in keys
     assert any("{volts}" in e.reason for e in info.value.errors)
+
+
+def test_dominant_frequency_finds_a_line_and_rejects_noise() -> None:
+    rng = np.random.default_rng(5)
+    dt_s = 1e-6
+    t = np.arange(50_000) * dt_s
+    tone_hz = 12_345.6
+    x = 0.1 * np.sin(2 * np.pi * tone_hz * t) + rng.normal(0.0, 0.01, t.size)
+    # bin spacing 1/(N dt) = 20 Hz; interpolation resolves far below one bin
+    assert dominant_frequency(x, dt_s) == pytest.approx(tone_hz, abs=2.0)
+    assert math.isnan(dominant_frequency(rng.normal(0.0, 0.01, t.size), dt_s))

@@ -336,3 +336,11 @@ def test_discover_against_the_simulated_bench(sim_bench) -> None:
     assert [r["resource"] for r in rows] == resources
     assert [r["model"] for r in rows] == ["SIM-DC-SUPPLY", "SIM-FUNC-GEN", "SIM-SCOPE-2CH"]
     assert all(r["ok"] and r["maker"] == "benchctl" for r in rows)
+
+
+def test_autoscale_of_a_board_that_is_off_settles_without_a_frequency(fast) -> None:
+    sim, b = fast
+    res = b.scope.autoscale(b.wiring.output_channel, cycles=5, timeout_s=2.0)
+    assert math.isnan(res.freq_hz)
+    assert res.scale_v_div >= 1e-3 and res.acquisitions <= 6
+    assert res.window_s == pytest.approx(0.1)  # 1 ms grown x10 twice, then kept
