@@ -16,8 +16,12 @@ Reproducibility
 The random numbers of an acquisition (noise, carrier and generator phase) come from a
 generator seeded by ``(seed, fingerprint, n)``: the fingerprint hashes every setting that
 shapes the record (scope, supply setpoint and limits, generator, wiring, board) and ``n``
-counts the earlier acquisitions with the same fingerprint. Supply readbacks do the same
-per quantity. Wall-clock time and the global order of requests never enter.
+counts the earlier acquisitions with the same fingerprint since the supply's output target
+last changed (a new rail setpoint starts a new "visit" and the counts start again). Supply
+readbacks do the same per quantity. Wall-clock time and the global order of requests never
+enter, so a run resumed on a fresh bench with the same seed gets the same records for the
+same points, even when a sweep visits a setpoint twice (up and down) and the first visit
+was replayed from the run folder rather than measured again.
 """
 
 from __future__ import annotations
@@ -472,6 +476,7 @@ class BenchModel:
         if target != s.target_v or s.segments[-1].target != target:
             self._truncate_history(t)
             s.retarget(t, target)
+            self._counts.clear()  # a new visit of the rail: counts start again
             self.clock.advance_to(self._settled_at(t))
         self.cond.notify_all()
 

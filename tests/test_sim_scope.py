@@ -280,3 +280,28 @@ def test_amplifier_board_driven_by_the_generator(visa):
         v = np.array(scope.query_ascii_values("TRAC? CH1"))
         assert np.ptp(v) == pytest.approx(sim.truth.swing_vpp_at(5.0), rel=0.03)
         assert np.ptp(v) < gain * 3
+
+
+def test_a_revisited_setpoint_reproduces_on_a_fresh_bench(visa):
+    """A resumed run measures the second visit of a setpoint on a fresh bench first."""
+
+    def run(path_v: list[float]) -> list[np.ndarray]:
+        with SimulatedBench(board="beacon", seed=9) as sim:
+            sup, scope = visa(sim.resources["supply"]), visa(sim.resources["scope"])
+            scope.write("SENS1:VOLT:RANG 4;:SENS:SWE:TIME 1e-4;POIN 4000;:FORM INT,8")
+            out = []
+            for v in path_v:
+                _power(sup, v)
+                _acquire(scope)
+                out.append(scope.query_binary_values("TRAC? CH1", datatype="b",
+                                                     container=np.array))
+                assert float(sup.query("MEAS:VOLT?")) == pytest.approx(v, abs=3e-3)
+            _acquire(scope)  # a repeat within the same visit has its own noise
+            out.append(scope.query_binary_values("TRAC? CH1", datatype="b", container=np.array))
+            return out
+
+    whole = run([4.0, 4.4, 4.0])
+    resumed = run([3.0, 4.0])  # a different way to the same setpoint
+    assert np.array_equal(whole[2], resumed[1])
+    assert np.array_equal(whole[3], resumed[2])
+    assert not np.array_equal(resumed[1], resumed[2])
