@@ -11,7 +11,7 @@ from benchctl.errors import ConfigError
 from benchctl.simulated.bench import ROLES, SimulatedBench, parse_fault
 from benchctl.simulated.models import BUILTIN_BOARDS
 
-LOOPBACK = ("127.0.0.1", "::1", "localhost")
+LOOPBACK = ("127.0.0.1", "localhost")
 
 HELP = """\
 Start a simulated DC supply, function generator and oscilloscope speaking SCPI over TCP,
