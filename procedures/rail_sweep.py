@@ -30,16 +30,36 @@ from benchctl.procedures.common import (
 )
 from benchctl.procedures.measure import (
     OUTPUT_COLUMNS,
+    SETUP_COLUMNS,
     MeasureOptions,
     ScopeMemory,
     measure_output,
+    setup_as_row,
+    setup_from_row,
 )
 
 SWEEP_COLUMNS: tuple[Column, ...] = (
     Column("branch", "", "up (approached from below) or down (from above, after running)"),
     Column("round", "", "0 for the grid, R for refinement round R"),
     *OUTPUT_COLUMNS,
+    *SETUP_COLUMNS,  # the set-up remembered after the point: a resumed sweep starts from it
 )
+
+
+def _remembered(memory: ScopeMemory | None) -> dict[str, Any]:
+    """The memory's set-up as row cells (None when nothing is remembered)."""
+    if memory is None or memory.setup is None:
+        return {c.name: None for c in SETUP_COLUMNS}
+    return setup_as_row(memory.setup)
+
+
+def _recall(memory: ScopeMemory | None, row: Mapping[str, Any]) -> None:
+    """After a point (measured or replayed), remember the set-up its row recorded."""
+    if memory is not None and row.get("scope_scale_v_div") is not None:
+        memory.setup = setup_from_row(row)
+    elif memory is not None:
+        memory.setup = None
+
 
 MEASURE_PARAMS: tuple[Param, ...] = (
     Param("records", int, "", 2, "records acquired and averaged per point", minimum=1, maximum=64),
@@ -90,10 +110,11 @@ def sweep_points(
         def measure(rail_v: float = rail_v) -> dict[str, Any]:
             tracker.at(rail_v, branch=side, floor_v=floor_v, top_v=top_v)  # type: ignore[arg-type]
             row = measure_output(ctx, opts, rail_set_v=rail_v, memory=memory)
-            row.update(branch=branch, round=round_no)
+            row.update(branch=branch, round=round_no, **_remembered(memory))
             return row
 
         row = ctx.point(key, measure)
+        _recall(memory, row)
         rows.append(row)
         ctx.progress(done + i + 1, total, {"rail_v": rail_v, "vpp_v": row.get("vpp_v"),
                                            "oscillating": row.get("oscillating")})
