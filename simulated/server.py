@@ -131,7 +131,7 @@ class Instrument:
             s |= 32
         if self.operation():
             s |= 128
-        if s & self.sre:
+        if s & self.sre & ~64:  # IEEE 488.2 §11.3.2: bit 6 of the enable register is ignored
             s |= 64
         return s
 

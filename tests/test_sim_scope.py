@@ -305,3 +305,30 @@ def test_a_revisited_setpoint_reproduces_on_a_fresh_bench(visa):
     assert np.array_equal(whole[2], resumed[1])
     assert np.array_equal(whole[3], resumed[2])
     assert not np.array_equal(resumed[1], resumed[2])
+
+
+@pytest.mark.parametrize("fm_hz", [2e3, 50e3])
+def test_envelope_follows_a_first_order_bandwidth(sim_bench, bench3, fm_hz):
+    """The board's envelope responds like a first-order low-pass (50 kHz in beacon.toml)."""
+    sup, gen, scope = bench3
+    rail, gen_vpp = 4.4, 0.4
+    _power(sup, rail)
+    assert gen.query(f"FUNC SIN;FREQ {fm_hz};VOLT {gen_vpp};:OUTP ON;*OPC?") == "1"
+    window = 20 / fm_hz if fm_hz > 10e3 else 4e-3
+    scope.write(f"SENS1:VOLT:RANG 4;:SENS:SWE:TIME {window};POIN {int(window * 40e6)};"
+                ":FORM INT,16")
+    _acquire(scope)
+    n, dt, t0, dy, y0 = _scaling(scope, 1)
+    v = scope.query_binary_values("TRAC? CH1", datatype="h", is_big_endian=True,
+                                  container=np.array) * dy + y0
+    t = t0 + np.arange(n) * dt
+    env = np.abs(hilbert(v))  # reference: scipy.signal.hilbert
+    keep = slice(n // 10, -n // 10)
+    basis = np.column_stack([np.ones(n), np.sin(2 * np.pi * fm_hz * t),
+                             np.cos(2 * np.pi * fm_hz * t)])
+    c, *_ = np.linalg.lstsq(basis[keep], env[keep], rcond=None)
+    m = math.hypot(c[1], c[2]) / c[0]
+    # first-order low-pass magnitude |H| = 1 / sqrt(1 + (f / fc)^2) (circuit-theory handbook)
+    fc = sim_bench.model.envelope_bandwidth_hz
+    expected = sim_bench.truth.modulation_index(rail, gen_vpp) / math.sqrt(1 + (fm_hz / fc) ** 2)
+    assert m == pytest.approx(expected, rel=0.02)
