@@ -11,6 +11,10 @@ Example
 from __future__ import annotations
 
 import logging
+import re
+import subprocess
+import sys
+import time
 from collections.abc import Iterable, Mapping
 from pathlib import Path
 from typing import Any
@@ -72,14 +76,24 @@ class SimulatedBench:
         Where the generator goes; "rail" for oscillators and "input" for amplifiers by default.
     physics : BenchPhysics, optional
         Instrument numbers (slew, settling, noise, re-arm time...).
+    process : bool
+        Run the servers in a child process (``benchctl sim``) instead of threads of this
+        one, so the client's interpreter lock is not shared (timing measurements). Then
+        only ``resources``, ``truth`` and the bench file are available: the state, fault
+        and log methods need the in-process bench.
     """
 
     def __init__(self, board: str | Path = "beacon", *, revision: str | None = None,
                  serial: str | None = None, seed: int = 1, realtime: bool = False,
                  host: str = "127.0.0.1", ports: Mapping[str, int] | int | None = None,
                  faults: Iterable[Any] | None = None, wiring_generator: str | None = None,
-                 physics: BenchPhysics | None = None) -> None:
+                 physics: BenchPhysics | None = None, process: bool = False) -> None:
         self.board_spec = board
+        self.process = bool(process)
+        self._proc: subprocess.Popen | None = None
+        self._proc_resources: dict[str, str] = {}
+        if process and (physics is not None or wiring_generator is not None):
+            raise ValueError("process=True takes the default physics and wiring only")
         self.model: BoardModel = load_board(board, revision=revision, serial=serial)
         if wiring_generator is None:
             wiring_generator = "input" if isinstance(self.model, AmplifierModel) else "rail"
@@ -116,8 +130,10 @@ class SimulatedBench:
     # -- life cycle -------------------------------------------------------------------
     def start(self) -> SimulatedBench:
         """Start the three servers (idempotent)."""
-        if self.servers:
+        if self.servers or self._proc is not None:
             return self
+        if self.process:
+            return self._start_process()
         self.bench = BenchModel(self.model, seed=self.seed, realtime=self.realtime,
                                 wiring_generator=self.wiring_generator, physics=self._physics)
         serial = self.model.serial
@@ -133,11 +149,56 @@ class SimulatedBench:
             self.inject(role, kind, **kw)
         return self
 
+    def _start_process(self) -> SimulatedBench:
+        m = self.model
+        argv = [sys.executable, "-m", "benchctl", "sim", "--board", str(self.board_spec),
+                "--revision", m.revision, "--serial", m.serial, "--seed", str(self.seed),
+                "--bind", self.host]
+        if self.realtime:
+            argv.append("--realtime")
+        if len(set(self._ports.values())) == 3 and all(self._ports.values()):
+            base = self._ports["supply"]
+            if self._ports != {r: base + i for i, r in enumerate(ROLES)}:
+                raise ValueError("process=True needs consecutive ports (or none)")
+            argv += ["--port-base", str(base)]
+        for role, kind, kw in self._faults:
+            opts = ",".join(f"{k}={v}" for k, v in kw.items())
+            argv += ["--fault", f"{role}:{kind}" + (f":{opts}" if opts else "")]
+        proc = subprocess.Popen(argv, stdout=subprocess.PIPE, stderr=subprocess.STDOUT,
+                                text=True)
+        pattern = re.compile(r"^(supply|generator|scope): (TCPIP::\S+)$")
+        lines: list[str] = []
+        deadline = time.monotonic() + 30.0
+        while time.monotonic() < deadline and len(lines) < 50:
+            line = proc.stdout.readline()
+            if not line:
+                break
+            lines.append(line.rstrip("\n"))
+            hit = pattern.match(lines[-1])
+            if hit:
+                self._proc_resources[hit.group(1)] = hit.group(2)
+            if lines[-1].startswith("serving"):
+                break
+        if set(self._proc_resources) != set(ROLES):
+            proc.kill()
+            proc.communicate(timeout=5)
+            raise RuntimeError("benchctl sim did not start: " + " | ".join(lines[-5:]))
+        self._proc = proc
+        return self
+
     def close(self) -> None:
         """Stop every server and close every connection."""
         for server in self.servers.values():
             server.close()
         self.servers = {}
+        proc, self._proc = self._proc, None
+        if proc is not None:
+            proc.terminate()
+            try:
+                proc.communicate(timeout=10)
+            except subprocess.TimeoutExpired:
+                proc.kill()
+                proc.communicate(timeout=5)
 
     def __enter__(self) -> SimulatedBench:
         return self.start()
@@ -149,6 +210,8 @@ class SimulatedBench:
     @property
     def resources(self) -> dict[str, str]:
         """Role -> VISA resource string."""
+        if self._proc is not None:
+            return dict(self._proc_resources)
         return {role: s.resource for role, s in self.servers.items()}
 
     @property
@@ -176,6 +239,8 @@ class SimulatedBench:
         return path
 
     def _need(self) -> BenchModel:
+        if self._proc is not None:
+            raise RuntimeError("not available when the simulated bench runs in a process")
         if self.bench is None or not self.servers:
             raise RuntimeError("SimulatedBench is not started")
         return self.bench

@@ -112,3 +112,19 @@ def test_command_log_records_messages(sim_bench, visa):
     inst.write("SENS:SWE:POIN 1000")
     inst.query("SENS:SWE:POIN?")
     assert sim_bench.command_log("scope")[-2:] == ["SENS:SWE:POIN 1000", "SENS:SWE:POIN?"]
+
+
+def test_bench_in_a_child_process(visa):
+    from benchctl.simulated import SimulatedBench
+
+    with SimulatedBench(board="beacon", revision="C", serial="C0042", seed=3, process=True,
+                        faults=["generator:push_error:code=-310,message=boot"]) as sim:
+        assert sim.truth.dropout_v < 2.6  # revision C, computed in this process
+        sup = visa(sim.resources["supply"])
+        assert sup.query("*IDN?") == "benchctl,SIM-DC-SUPPLY,SIM-C0042-SUP,0.1.0"
+        gen = visa(sim.resources["generator"])
+        assert parse_error_response(gen.query("SYST:ERR?")) == (-310, "System error;boot")
+        with pytest.raises(RuntimeError, match="in a process"):
+            sim.supply_state()
+        proc = sim._proc
+    assert proc.returncode == 0  # SIGTERM: a clean exit
