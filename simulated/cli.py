@@ -22,8 +22,10 @@ other address needs --bind and is announced with a warning."""
 
 def add_command(subparsers) -> None:
     """Add the ``sim`` sub-command."""
+    from benchctl.cli import CAUTIONS
+
     p = subparsers.add_parser("sim", help="serve a simulated bench on loopback",
-                              description=HELP,
+                              description=HELP, epilog=CAUTIONS,
                               formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("--board", default="beacon",
                    help=f"built-in board ({', '.join(BUILTIN_BOARDS)}) or a board TOML file "

@@ -135,3 +135,11 @@ def test_handler_in_process_with_port_base_and_fault(visa):
         stop.set()
         th.join(timeout=10)
     assert rc == [0]
+
+
+def test_sim_help_carries_the_cautions(capsys):
+    with pytest.raises(SystemExit) as exc:
+        build_parser().parse_args(["sim", "--help"])
+    assert exc.value.code == 0
+    text = capsys.readouterr().out
+    assert "no authentication" in text and "Cautions:" in text and "--write-bench" in text
