@@ -695,9 +695,10 @@ def board_from_dict(doc: dict[str, Any], *, file: str, base_dir: Path | None = N
         params[p.name] = x
     prefix = f"revisions.{revision}"
     kwargs: dict[str, Any] = {"file": file, "prefix": prefix}
-    if "table" in extras:
-        table = extras["table"]
-        kwargs["table_path"] = (base_dir or Path(".")) / table
+    if "table" in getattr(cls, "EXTRA_KEYS", ()):
+        if "table" not in extras:
+            raise ConfigError(file, f"{prefix}.table", "missing (file name of the CSV table)")
+        kwargs["table_path"] = (base_dir or Path(".")) / extras["table"]
     model = cls.from_params(head["name"], revision, serial, params, **kwargs)
     model.check(file, prefix)
     model.description = head.get("description", "")

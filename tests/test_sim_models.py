@@ -199,6 +199,14 @@ def test_good_base_file_loads(tmp_path):
     assert m.truth().linear_lo_v == 3.2 and m.serial == "A0001"
 
 
+def test_table_board_without_table_names_the_key(tmp_path):
+    toml = (BOARDS_DIR / "replay.toml").read_text().replace('table = "replay.csv"', "")
+    (tmp_path / "r.toml").write_text(toml)
+    with pytest.raises(ConfigError) as exc:
+        load_board(tmp_path / "r.toml")
+    assert exc.value.key == "revisions.T1.table"
+
+
 def test_bad_toml_and_missing_file(tmp_path):
     path = tmp_path / "broken.toml"
     path.write_text("[board\nname=")
