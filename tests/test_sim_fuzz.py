@@ -38,7 +38,7 @@ def test_random_messages_only_queue_errors(visa, role):
         # keep acquisitions small whatever the messages do next
         started = time.monotonic()
 
-        @settings(max_examples=60, deadline=None, derandomize=True,
+        @settings(max_examples=60, deadline=None, derandomize=True, database=None,
                   suppress_health_check=[HealthCheck.too_slow])
         @given(msg=messages)
         def check(msg: str) -> None:
