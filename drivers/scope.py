@@ -15,12 +15,14 @@ memory) - the autoscale frequency estimate is a simpler interpolated-DFT peak.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
+from concurrent.futures import Future, ThreadPoolExecutor, wait
 from dataclasses import dataclass
 from typing import Any, Literal
 
 import numpy as np
 
-from benchctl.errors import MeasurementError, ProtocolError
+from benchctl.errors import ConnectionLost, InstrumentTimeout, MeasurementError, ProtocolError
 
 from .base import Instrument, register_driver
 
@@ -152,7 +154,14 @@ def dominant_frequency(volts: np.ndarray, dt_s: float, *, min_peak_ratio: float 
 
 
 def decode_codes(
-    payload: bytes | bytearray, dtype: np.dtype, *, dy_v: float, y0_v: float, clip_lo: int, clip_hi: int
+    payload: bytes | bytearray | np.ndarray,
+    dtype: np.dtype,
+    *,
+    dy_v: float,
+    y0_v: float,
+    clip_lo: int,
+    clip_hi: int,
+    out: np.ndarray | None = None,
 ) -> tuple[np.ndarray, int]:
     """Turn block codes into volts and count the codes at either screen edge.
 
@@ -163,8 +172,8 @@ def decode_codes(
     -------
     (volts, clipped) : (numpy.ndarray of float64, int)
     """
-    codes_all = np.frombuffer(payload, dtype=dtype)
-    volts = np.empty(codes_all.size, dtype=np.float64)
+    codes_all = payload if isinstance(payload, np.ndarray) else np.frombuffer(payload, dtype=dtype)
+    volts = np.empty(codes_all.size, dtype=np.float64) if out is None else out
     clipped = 0
     native = dtype.newbyteorder("=")
     for i in range(0, codes_all.size, _DECODE_PIECE):
@@ -178,6 +187,68 @@ def decode_codes(
         if codes.min() <= clip_lo or codes.max() >= clip_hi:
             clipped += int(np.count_nonzero(codes <= clip_lo) + np.count_nonzero(codes >= clip_hi))
     return volts, clipped
+
+
+class _OverlappedDecoder:
+    """Decodes pieces of a block in a worker thread while the next pieces arrive.
+
+    numpy and socket reads both release the GIL, so on two cores decoding overlaps the
+    transfer. Pieces are disjoint and already received when handed over; the main thread
+    waits for every piece before the volts are used.
+    """
+
+    def __init__(self, pool: ThreadPoolExecutor, dtype: np.dtype, *, clip_lo: int, clip_hi: int) -> None:
+        self.pool = pool
+        self.dtype = dtype
+        self.clip_lo = clip_lo
+        self.clip_hi = clip_hi
+        self.volts: np.ndarray | None = None
+        self.dy_v = 1.0
+        self.y0_v = 0.0
+        self.done = 0  # samples handed over
+        self.futures: list[Future[int]] = []
+
+    def start(self, points: int, *, dy_v: float, y0_v: float) -> None:
+        self.volts = np.empty(points, dtype=np.float64)
+        self.dy_v, self.y0_v = float(dy_v), float(y0_v)
+
+    def __call__(self, buffer: bytearray, n_bytes: int) -> None:
+        if self.volts is None:
+            return
+        upto = min(n_bytes // self.dtype.itemsize, self.volts.size)
+        if upto - self.done >= _DECODE_PIECE:
+            self.futures.append(self.pool.submit(self._piece, buffer, self.done, upto))
+            self.done = upto
+
+    def _piece(self, buffer: bytearray, i0: int, i1: int) -> int:
+        codes = np.frombuffer(buffer, dtype=self.dtype, count=i1 - i0, offset=i0 * self.dtype.itemsize)
+        assert self.volts is not None
+        _, clipped = decode_codes(
+            codes, self.dtype, dy_v=self.dy_v, y0_v=self.y0_v, clip_lo=self.clip_lo, clip_hi=self.clip_hi,
+            out=self.volts[i0:i1],
+        )
+        return clipped
+
+    def finish(self, payload: bytes | bytearray) -> tuple[np.ndarray, int]:
+        assert self.volts is not None
+        clipped = sum(f.result() for f in self.futures)
+        self.futures.clear()
+        if self.done < self.volts.size:
+            rest = np.frombuffer(payload, dtype=self.dtype, offset=self.done * self.dtype.itemsize)
+            _, more = decode_codes(
+                rest, self.dtype, dy_v=self.dy_v, y0_v=self.y0_v, clip_lo=self.clip_lo, clip_hi=self.clip_hi,
+                out=self.volts[self.done :],
+            )
+            clipped += more
+            self.done = self.volts.size
+        return self.volts, clipped
+
+    def cancel(self) -> None:
+        """Wait for pieces still running (after a failure) so no thread touches the buffer."""
+        for f in self.futures:
+            f.cancel()
+        wait(self.futures)
+        self.futures.clear()
 
 
 @register_driver("scope")
@@ -221,6 +292,7 @@ class Scope(Instrument):
         # channel -> (range_v, offset_v) as last programmed, for ASCII clip detection
         self._screen: dict[int, tuple[float, float]] = {}
         self._points: int | None = None
+        self._pool: ThreadPoolExecutor | None = None
 
     # ------------------------------------------------------------------ set-up
     def setup_channel(
@@ -338,36 +410,101 @@ class Scope(Instrument):
             self._set_format("format_ascii")
         else:
             self._set_format("format_int16" if mode == "int16" else "format_int8")
+            if self.dialect.compound and not self.strict and self.transport.direct:
+                return self._fetch_compound(channel, mode)
         scale = self.scaling(channel)
         points = int(scale["points"])
         dt_s = float(scale["dt_s"])
         if points < 0 or not dt_s > 0:
             raise ProtocolError(f"{self.resource}: scaling reply makes no sense: {scale}")
-        clipped: int | None = None
-        if mode == "ascii":
-            volts = np.asarray(self.ask("fetch_ascii", channel=channel), dtype=float)
-            if volts.size != points:
-                raise ProtocolError(f"{self.resource}: ASCII record has {volts.size} values, scaling says {points}")
-        else:
+        if mode != "ascii":
             width = 2 if mode == "int16" else 1
             text = self.dialect.op("fetch_block").render(channel=channel)
-            if mode == "int16":
-                dtype = np.dtype(">i2" if self.dialect.int16_big_endian else "<i2")
-                lo, hi = _ADC8_MIN * 256, _ADC8_MAX * 256  # INTeger,16 = 8-bit code x 256
-            else:
-                dtype = np.dtype("i1")
-                lo, hi = _ADC8_MIN, _ADC8_MAX
-            payload = self.transport.read_block(text, expected_bytes=points * width)
-            volts, clipped = decode_codes(
-                payload, dtype, dy_v=scale["dy_v"], y0_v=scale["y0_v"], clip_lo=lo, clip_hi=hi
-            )
-            # clipped samples counted from the codes themselves: no extra query
-        if clipped is None:
-            if self.dialect.has("clipped"):
-                clipped = int(self.ask("clipped", channel=channel))
-            else:
-                clipped = self._clip_from_screen(channel, volts)
+            payload = self._explained(lambda: self.transport.read_block(text, expected_bytes=points * width), text)
+            return self._waveform(channel, mode, scale, payload)
+        volts = np.asarray(self.ask("fetch_ascii", channel=channel), dtype=float)
+        if volts.size != points:
+            raise ProtocolError(f"{self.resource}: ASCII record has {volts.size} values, scaling says {points}")
+        if self.dialect.has("clipped"):
+            clipped = int(self.ask("clipped", channel=channel))
+        else:
+            clipped = self._clip_from_screen(channel, volts)
         return Waveform(volts=volts, dt_s=dt_s, t0_s=float(scale["t0_s"]), clipped_samples=clipped, channel=channel)
+
+    def _fetch_compound(self, channel: int, mode: TransferMode) -> Waveform:
+        """Scaling and block in one message: ``TRACe:SCALing? CH1;:TRACe:DATA? CH1``."""
+        scaling_op = self.dialect.op("scaling")
+        block_text = self.dialect.op("fetch_block").render(channel=channel)
+        joiner = ";" if block_text.startswith("*") else ";:"
+        message = f"{scaling_op.render(channel=channel)}{joiner}{block_text}"
+        width = 2 if mode == "int16" else 1
+        scale: dict[str, float] = {}
+
+        def expected(text: str) -> int:
+            scale.update(self._parse(scaling_op, text))
+            if int(scale["points"]) < 0 or not scale["dt_s"] > 0:
+                raise ProtocolError(f"{self.resource}: scaling reply makes no sense: {scale}")
+            return int(scale["points"]) * width
+
+        if mode == "int16":
+            dtype = np.dtype(">i2" if self.dialect.int16_big_endian else "<i2")
+            lo, hi = _ADC8_MIN * 256, _ADC8_MAX * 256  # INTeger,16 = 8-bit code x 256
+        else:
+            dtype = np.dtype("i1")
+            lo, hi = _ADC8_MIN, _ADC8_MAX
+        decoder = _OverlappedDecoder(self._decode_pool(), dtype, clip_lo=lo, clip_hi=hi)
+
+        def expected_and_start(text: str) -> int:
+            n_bytes = expected(text)
+            decoder.start(n_bytes // width, dy_v=scale["dy_v"], y0_v=scale["y0_v"])
+            return n_bytes
+
+        try:
+            payload = self._explained(
+                lambda: self.transport.read_block(message, prefix=expected_and_start, on_data=decoder), message
+            )
+            volts, clipped = decoder.finish(payload)
+        finally:
+            decoder.cancel()
+        return Waveform(volts=volts, dt_s=float(scale["dt_s"]), t0_s=float(scale["t0_s"]), clipped_samples=clipped, channel=channel)
+
+    def _decode_pool(self) -> ThreadPoolExecutor:
+        """One worker thread that decodes block pieces while the rest is still arriving."""
+        if self._pool is None:
+            self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="benchctl-decode")
+        return self._pool
+
+    def close(self) -> None:
+        """Close the session and stop the decode worker."""
+        try:
+            super().close()
+        finally:
+            if self._pool is not None:
+                self._pool.shutdown(wait=True)
+                self._pool = None
+
+    def _explained(self, read: Callable[[], bytes | bytearray], message: str) -> bytes | bytearray:
+        """Run a block read; if it fails, let the error queue say why when it can."""
+        try:
+            return read()
+        except (InstrumentTimeout, ProtocolError):
+            self._unchecked.append(message)
+            try:
+                self.check_errors()  # raises InstrumentError when the instrument refused
+            except (InstrumentTimeout, ConnectionLost, ProtocolError):
+                pass
+            raise
+
+    def _waveform(self, channel: int, mode: TransferMode, scale: dict[str, float], payload: bytes | bytearray) -> Waveform:
+        if mode == "int16":
+            dtype = np.dtype(">i2" if self.dialect.int16_big_endian else "<i2")
+            lo, hi = _ADC8_MIN * 256, _ADC8_MAX * 256  # INTeger,16 = 8-bit code x 256
+        else:
+            dtype = np.dtype("i1")
+            lo, hi = _ADC8_MIN, _ADC8_MAX
+        # clipped samples counted from the codes themselves: no extra query
+        volts, clipped = decode_codes(payload, dtype, dy_v=scale["dy_v"], y0_v=scale["y0_v"], clip_lo=lo, clip_hi=hi)
+        return Waveform(volts=volts, dt_s=float(scale["dt_s"]), t0_s=float(scale["t0_s"]), clipped_samples=clipped, channel=channel)
 
     def _set_format(self, op: str) -> None:
         if self._format_sent != op:

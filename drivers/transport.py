@@ -40,6 +40,7 @@ import select
 import socket
 import time
 import warnings
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import pyvisa
@@ -225,12 +226,20 @@ class Transport:
                 )
             return reply
 
-    def read_block(self, message: str, *, expected_bytes: int | None = None) -> bytes | bytearray:
+    def read_block(
+        self,
+        message: str,
+        *,
+        expected_bytes: int | None = None,
+        prefix: Callable[[str], int | None] | None = None,
+        on_data: Callable[[bytearray, int], None] | None = None,
+    ) -> bytes | bytearray:
         """Send ``message`` and read its IEEE 488.2 definite-length block reply fast.
 
-        The header ``#<n><length>`` is read with the termination character on, then exactly
-        ``length`` bytes with the termination character off and a large receive chunk, then
-        the trailing terminator. Termination and chunk size are restored in ``finally``.
+        The header ``#<n><length>`` is read, then exactly ``length`` bytes, then the
+        trailing terminator. Through the session's socket (pyvisa-py) no termination
+        character is involved; through pyvisa it is switched off for the payload and
+        restored in ``finally``.
 
         Parameters
         ----------
@@ -239,6 +248,13 @@ class Transport:
         expected_bytes : int or None
             Payload size the caller expects (points x sample width); needed for an
             indefinite ``#0`` block, and checked against a definite block's declared length.
+        prefix : callable, optional
+            For a compound query whose reply is ``<text>;<block>`` (IEEE 488.2 response
+            units joined by ';'): ``prefix(text)`` gets the text and returns the expected
+            payload size (or None). Needs :attr:`direct`.
+        on_data : callable, optional
+            ``on_data(buffer, n_bytes)`` is called as the payload arrives (the first
+            ``n_bytes`` of ``buffer`` are final), so decoding can start before the end.
 
         Returns
         -------
@@ -254,6 +270,9 @@ class Transport:
         """
         t0 = time.perf_counter()
         self.write(message)
+        if prefix is not None:
+            text = self._read_prefix(message)
+            expected_bytes = prefix(text)
         head = self._read_exact(2, message)
         if head[:1] != b"#" or not head[1:2].isdigit():
             rest = b"" if head.endswith(b"\n") else self._read_line_quietly()
@@ -279,7 +298,7 @@ class Transport:
                     f"{self.resource}: block declares {length} bytes, expected {expected_bytes}",
                     head + digits,
                 )
-        payload = self._read_payload(length, message)
+        payload = self._read_payload(length, message, on_data)
         tail = self._read_exact(1, message)
         if tail not in (b"\n", b"\r"):
             self.drain()
@@ -357,7 +376,13 @@ class Transport:
             return sock, pending
         return None
 
-    def _fill(self, path: tuple[socket.socket, bytearray], out: bytearray, message: str) -> None:
+    def _fill(
+        self,
+        path: tuple[socket.socket, bytearray],
+        out: bytearray,
+        message: str,
+        on_data: Callable[[bytearray, int], None] | None = None,
+    ) -> None:
         """Fill ``out`` exactly from what pyvisa-py buffered, then from the socket in place.
 
         Never reads past ``len(out)``, so what follows stays for the next read.
@@ -377,6 +402,8 @@ class Transport:
         if got:
             view[:got] = pending[:got]
             del pending[:got]
+            if on_data is not None:
+                on_data(out, got)
         deadline = time.monotonic() + self._timeout_s
         try:
             while got < length:
@@ -393,10 +420,53 @@ class Transport:
                 if n == 0:
                     raise ConnectionLost("connection closed by the instrument", message, self.resource)
                 got += n
+                if on_data is not None:
+                    on_data(out, got)
         except OSError as exc:
             raise self._convert(exc, message) from exc
         finally:
             view.release()
+
+    @property
+    def direct(self) -> bool:
+        """True if blocks are read straight from the session's socket."""
+        return self._socket_path() is not None
+
+    def _read_prefix(self, message: str, *, limit: int = 4096) -> str:
+        """Read the text response unit before a block, up to its ';' separator.
+
+        Receives in small pieces; whatever follows the ';' goes back into pyvisa-py's
+        pending buffer, which every later read takes first.
+        """
+        path = self._socket_path()
+        if path is None:
+            raise ProtocolError(f"{self.resource}: a text-then-block reply needs the socket path", message)
+        sock, pending = path
+        got = bytearray(pending)
+        pending.clear()
+        deadline = time.monotonic() + self._timeout_s
+        try:
+            while True:
+                cut = got.find(b";")
+                if cut >= 0:
+                    pending[:0] = got[cut + 1 :]
+                    return got[:cut].decode("ascii", errors="replace")
+                if got[:1] == b"#" or b"\n" in got or len(got) > limit:
+                    pending[:0] = got
+                    self.drain()
+                    raise ProtocolError(f"{self.resource}: expected '<text>;<block>' in reply to {message!r}", got[:40])
+                remaining_s = deadline - time.monotonic()
+                if remaining_s <= 0:
+                    self._dirty = True
+                    raise InstrumentTimeout("no reply", message, self.resource, self._timeout_s)
+                ready, _, _ = select.select([sock], [], [], remaining_s)
+                if ready:
+                    chunk = sock.recv(256)
+                    if not chunk:
+                        raise ConnectionLost("connection closed by the instrument", message, self.resource)
+                    got += chunk
+        except OSError as exc:
+            raise self._convert(exc, message) from exc
 
     def _read_exact(self, count: int, message: str) -> bytes:
         path = self._socket_path()
@@ -409,14 +479,16 @@ class Transport:
         except (VisaIOError, OSError) as exc:
             raise self._convert(exc, message) from exc
 
-    def _read_payload(self, length: int, message: str) -> bytes | bytearray:
+    def _read_payload(
+        self, length: int, message: str, on_data: Callable[[bytearray, int], None] | None = None
+    ) -> bytes | bytearray:
         """Read exactly ``length`` payload bytes; the termination character plays no part."""
         path = self._socket_path()
         if path is None:
             return self._read_payload_visa(length, message)
         out = bytearray(length)
         try:
-            self._fill(path, out, message)
+            self._fill(path, out, message, on_data)
         except InstrumentTimeout as exc:
             self.drain()
             raise ProtocolError(

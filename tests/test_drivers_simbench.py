@@ -344,3 +344,52 @@ def test_autoscale_of_a_board_that_is_off_settles_without_a_frequency(fast) -> N
     assert math.isnan(res.freq_hz)
     assert res.scale_v_div >= 1e-3 and res.acquisitions <= 6
     assert res.window_s == pytest.approx(0.1)  # 1 ms grown x10 twice, then kept
+
+
+def test_fetch_before_any_acquisition_says_why(fast) -> None:
+    sim, b = fast
+    b.scope.query_retries = 0
+    with pytest.raises(InstrumentError) as info:
+        b.scope.fetch(1)
+    assert info.value.code == -230  # "Data corrupt or stale" (SCPI-1999 vol. 2, 21.8.9, from memory)
+    assert "TRACe:DATA? CH1" in info.value.command
+
+
+def test_fast_fetch_is_one_exchange_strict_fetch_is_checked(sim_bench) -> None:
+    cfg = load_bench_text(sim_bench.bench_toml())
+    for strict in (False, True):
+        with open_bench(cfg, max_voltage_v=6.0, strict=strict) as b:
+            sc = b.scope
+            sc.setup_channel(1, scale_v_div=0.5)
+            sc.set_timebase(window_s=1e-5, sample_rate_hz=1e9)
+            sc.acquire(timeout_s=2.0)
+            sc.fetch(1)  # the first fetch also sends the transfer format
+            n = len(sim_bench.command_log("scope"))
+            wf = sc.fetch(1)
+            sent = sim_bench.command_log("scope")[n:]
+            assert wf.volts.size == 10_000
+            if strict:
+                assert "TRACe:SCALing? CH1" in sent and "TRACe:DATA? CH1" in sent
+                assert "SYSTem:ERRor:NEXT?" in sent
+            else:
+                assert sent == ["TRACe:SCALing? CH1;:TRACe:DATA? CH1"]
+
+
+def test_large_record_decoded_in_pieces_matches_ascii_and_the_clip_count(fast) -> None:
+    # 300 000 samples: the block is decoded in several pieces by the worker thread while it
+    # arrives; the ASCII transfer of the same record (volts as NR3 text) is the reference.
+    sim, b = fast
+    _power_up(b, 5.0)
+    sc, ch = b.scope, b.wiring.output_channel
+    for inst in b.instruments.values():
+        inst.transport.timeout_s = 5.0
+    sc.setup_channel(ch, scale_v_div=0.15)  # 1.2 V screen for a ~2 Vpp output: clips
+    sc.set_timebase(window_s=3e-4, sample_rate_hz=1e9)
+    sc.set_trigger(source="free")
+    sc.acquire(timeout_s=5.0)
+    wf = sc.fetch(ch)
+    text_wf = sc.fetch(ch, transfer="ascii")
+    assert wf.volts.size == 300_000
+    # ASCII carries 7 significant digits (the simulated scope's "%.6E")
+    np.testing.assert_allclose(wf.volts, text_wf.volts, rtol=1e-6, atol=1e-9)
+    assert wf.clipped_samples == int(sc.ask("clipped", channel=ch)) > 1000
