@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 import time
 
 import numpy as np
@@ -153,3 +154,13 @@ def test_generator_shapes_on_the_rail(sim_bench, visa, shape):
     rms = np.sqrt(np.mean((rail - rail.mean()) ** 2))
     expected = {"SIN": 0.2 / np.sqrt(2), "SQU": 0.2, "TRI": 0.2 / np.sqrt(3)}[shape]
     assert rms == pytest.approx(expected, rel=0.03)
+
+
+def test_readback_noise_level(sim_bench, supply):
+    assert supply.query("VOLT 3.3;:OUTP ON;*OPC?") == "1"
+    volts = np.array([float(supply.query("MEAS:VOLT?")) for _ in range(300)])
+    # 0.5 mV rms noise through a 1 mV quantiser: sqrt(0.5^2 + 1^2/12) mV (quantisation
+    # noise of a uniform quantiser is step^2/12, Widrow's rule, from memory)
+    expected = math.sqrt(0.5e-3**2 + 1e-3**2 / 12)
+    assert volts.std(ddof=1) == pytest.approx(expected, rel=0.2)
+    assert volts.mean() == pytest.approx(3.3, abs=1e-4)
