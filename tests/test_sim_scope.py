@@ -332,3 +332,28 @@ def test_envelope_follows_a_first_order_bandwidth(sim_bench, bench3, fm_hz):
     fc = sim_bench.model.envelope_bandwidth_hz
     expected = sim_bench.truth.modulation_index(rail, gen_vpp) / math.sqrt(1 + (fm_hz / fc) ** 2)
     assert m == pytest.approx(expected, rel=0.02)
+
+
+def test_hysteresis_between_dropout_and_startup(sim_bench, bench3):
+    sup, _, scope = bench3
+    truth = sim_bench.truth
+    mid = 0.5 * (truth.dropout_v + truth.startup_v)  # inside the hysteresis band
+    scope.write("SENS1:VOLT:RANG 2;:SENS:SWE:TIME 1e-4;POIN 4000")
+
+    def rms_at(v: float) -> float:
+        _power(sup, v)
+        _acquire(scope)
+        return float(scope.query("FETC1:VOLT:RMS?"))
+
+    from_below = rms_at(mid)  # 0 V -> mid: never reached start-up
+    rms_at(5.0)
+    from_above = rms_at(mid)  # 5 V -> mid: still running
+    # a running sine of Vpp has rms Vpp / (2 sqrt 2) (handbook)
+    assert from_above == pytest.approx(truth.vpp_at(mid) / (2 * math.sqrt(2)), rel=0.03)
+    # a stopped board leaves noise only: 2 mV board noise, 0.25 LSB scope noise, and the
+    # quantiser's LSB/sqrt(12) at 2 V full screen (~3.5 mV in all)
+    assert from_below < 0.05 * from_above
+    below = rms_at(truth.dropout_v - 0.05)  # under dropout it stops ...
+    assert below < 0.05 * from_above
+    assert rms_at(mid) < 0.05 * from_above  # ... and stays stopped on the way back up
+    assert sim_bench.board_state()["oscillating"] is False
