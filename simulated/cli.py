@@ -40,6 +40,10 @@ def add_command(subparsers) -> None:
     p.add_argument("--bind", default="127.0.0.1", metavar="ADDR",
                    help="address to bind (default 127.0.0.1; anything else is reachable "
                         "from the network without authentication)")
+    p.add_argument("--wire-generator", choices=("rail", "input", "none"), default=None,
+                   help="where the generator goes: summed onto the rail (modulation fixture) or "
+                        "into the board input (default: rail for oscillators, input for "
+                        "amplifiers)")
     p.add_argument("--write-bench", type=Path, metavar="PATH",
                    help="write a ready bench file for these servers")
     p.add_argument("--dialect", default="scpi1999", help="dialect named in the bench file")
@@ -67,7 +71,8 @@ def handler(args, console, *, stop: threading.Event | None = None) -> int:
     try:
         sim = SimulatedBench(board=args.board, revision=args.revision, serial=args.serial,
                              seed=args.seed, realtime=args.realtime, host=args.bind,
-                             ports=args.port_base, faults=faults)
+                             ports=args.port_base, faults=faults,
+                             wiring_generator=args.wire_generator)
     except ConfigError as exc:
         console.print(f"benchctl sim: {exc}", markup=False, soft_wrap=True)
         return 2

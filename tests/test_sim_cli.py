@@ -99,9 +99,11 @@ def test_sim_bad_input_exits_2(tmp_path):
     assert "board.flavour" in out and "unknown key" in out and str(bad) in out
     rc, out = _run_in_process(["sim", "--fault", "scope:melt"])
     assert rc == 2 and "unknown fault" in out
+    rc, out = _run_in_process(["sim", "--board", "replay", "--revision", "T9"])
+    assert rc == 2 and "revisions" in out and "T9" in out
 
 
-def test_handler_in_process_with_port_base_and_fault(visa):
+def test_handler_in_process_with_port_base_and_fault(visa, tmp_path):
     """The handler with an injected console and stop event (no signals needed)."""
     import socket
 
@@ -110,7 +112,9 @@ def test_handler_in_process_with_port_base_and_fault(visa):
         base = probe.getsockname()[1]
     if base > 65000:
         base -= 1000
-    args = build_parser().parse_args(["sim", "--port-base", str(base), "--fault",
+    args = build_parser().parse_args(["sim", "--port-base", str(base), "--wire-generator",
+                                      "none", "--write-bench", str(tmp_path / "b.toml"),
+                                      "--fault",
                                       "generator:push_error:code=-310,message=hello"])
     buf = io.StringIO()
     console = Console(file=buf, width=200)
@@ -131,6 +135,7 @@ def test_handler_in_process_with_port_base_and_fault(visa):
         gen = visa(f"TCPIP::127.0.0.1::{base + 1}::SOCKET")
         assert gen.query("SYST:ERR?") == '-310,"System error;hello"'
         gen.close()
+        assert tomllib.loads((tmp_path / "b.toml").read_text())["wiring"]["generator"] == "none"
     finally:
         stop.set()
         th.join(timeout=10)
