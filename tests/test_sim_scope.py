@@ -357,3 +357,22 @@ def test_hysteresis_between_dropout_and_startup(sim_bench, bench3):
     assert below < 0.05 * from_above
     assert rms_at(mid) < 0.05 * from_above  # ... and stays stopped on the way back up
     assert sim_bench.board_state()["oscillating"] is False
+
+
+def test_table_board_replays_its_csv(visa):
+    from benchctl.simulated.models import BOARDS_DIR, read_table
+
+    table = read_table(BOARDS_DIR / "replay.csv", file="replay.csv")
+    with SimulatedBench(board="replay", seed=1) as sim:
+        sup, scope = visa(sim.resources["supply"]), visa(sim.resources["scope"])
+        scope.write("SENS1:VOLT:RANG 4;:SENS:SWE:TIME 2e-4;POIN 8000")
+        for rail in (3.6, 4.5, 5.3):
+            _power(sup, rail)
+            _acquire(scope)
+            rms = float(scope.query("FETC1:VOLT:RMS?"))
+            # reference: numpy.interp on the user's table; a sine's rms is Vpp / (2 sqrt 2)
+            vpp = float(np.interp(rail, table["rail_v"], table["vpp_v"]))
+            assert rms == pytest.approx(vpp / (2 * math.sqrt(2)), rel=0.02)
+            amps = float(sup.query("MEAS:CURR?"))
+            assert amps == pytest.approx(np.interp(rail, table["rail_v"], table["current_a"]),
+                                         abs=1e-4)
