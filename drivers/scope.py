@@ -16,7 +16,6 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
-from concurrent.futures import Future, ThreadPoolExecutor, wait
 from dataclasses import dataclass
 from typing import Any, Literal
 
@@ -189,68 +188,6 @@ def decode_codes(
     return volts, clipped
 
 
-class _OverlappedDecoder:
-    """Decodes pieces of a block in a worker thread while the next pieces arrive.
-
-    numpy and socket reads both release the GIL, so on two cores decoding overlaps the
-    transfer. Pieces are disjoint and already received when handed over; the main thread
-    waits for every piece before the volts are used.
-    """
-
-    def __init__(self, pool: ThreadPoolExecutor, dtype: np.dtype, *, clip_lo: int, clip_hi: int) -> None:
-        self.pool = pool
-        self.dtype = dtype
-        self.clip_lo = clip_lo
-        self.clip_hi = clip_hi
-        self.volts: np.ndarray | None = None
-        self.dy_v = 1.0
-        self.y0_v = 0.0
-        self.done = 0  # samples handed over
-        self.futures: list[Future[int]] = []
-
-    def start(self, points: int, *, dy_v: float, y0_v: float) -> None:
-        self.volts = np.empty(points, dtype=np.float64)
-        self.dy_v, self.y0_v = float(dy_v), float(y0_v)
-
-    def __call__(self, buffer: bytearray, n_bytes: int) -> None:
-        if self.volts is None:
-            return
-        upto = min(n_bytes // self.dtype.itemsize, self.volts.size)
-        if upto - self.done >= _DECODE_PIECE:
-            self.futures.append(self.pool.submit(self._piece, buffer, self.done, upto))
-            self.done = upto
-
-    def _piece(self, buffer: bytearray, i0: int, i1: int) -> int:
-        codes = np.frombuffer(buffer, dtype=self.dtype, count=i1 - i0, offset=i0 * self.dtype.itemsize)
-        assert self.volts is not None
-        _, clipped = decode_codes(
-            codes, self.dtype, dy_v=self.dy_v, y0_v=self.y0_v, clip_lo=self.clip_lo, clip_hi=self.clip_hi,
-            out=self.volts[i0:i1],
-        )
-        return clipped
-
-    def finish(self, payload: bytes | bytearray) -> tuple[np.ndarray, int]:
-        assert self.volts is not None
-        clipped = sum(f.result() for f in self.futures)
-        self.futures.clear()
-        if self.done < self.volts.size:
-            rest = np.frombuffer(payload, dtype=self.dtype, offset=self.done * self.dtype.itemsize)
-            _, more = decode_codes(
-                rest, self.dtype, dy_v=self.dy_v, y0_v=self.y0_v, clip_lo=self.clip_lo, clip_hi=self.clip_hi,
-                out=self.volts[self.done :],
-            )
-            clipped += more
-            self.done = self.volts.size
-        return self.volts, clipped
-
-    def cancel(self) -> None:
-        """Wait for pieces still running (after a failure) so no thread touches the buffer."""
-        for f in self.futures:
-            f.cancel()
-        wait(self.futures)
-        self.futures.clear()
-
-
 @register_driver("scope")
 class Scope(Instrument):
     """An oscilloscope driven through a dialect.
@@ -292,7 +229,6 @@ class Scope(Instrument):
         # channel -> (range_v, offset_v) as last programmed, for ASCII clip detection
         self._screen: dict[int, tuple[float, float]] = {}
         self._points: int | None = None
-        self._pool: ThreadPoolExecutor | None = None
 
     # ------------------------------------------------------------------ set-up
     def setup_channel(
@@ -446,42 +382,8 @@ class Scope(Instrument):
                 raise ProtocolError(f"{self.resource}: scaling reply makes no sense: {scale}")
             return int(scale["points"]) * width
 
-        if mode == "int16":
-            dtype = np.dtype(">i2" if self.dialect.int16_big_endian else "<i2")
-            lo, hi = _ADC8_MIN * 256, _ADC8_MAX * 256  # INTeger,16 = 8-bit code x 256
-        else:
-            dtype = np.dtype("i1")
-            lo, hi = _ADC8_MIN, _ADC8_MAX
-        decoder = _OverlappedDecoder(self._decode_pool(), dtype, clip_lo=lo, clip_hi=hi)
-
-        def expected_and_start(text: str) -> int:
-            n_bytes = expected(text)
-            decoder.start(n_bytes // width, dy_v=scale["dy_v"], y0_v=scale["y0_v"])
-            return n_bytes
-
-        try:
-            payload = self._explained(
-                lambda: self.transport.read_block(message, prefix=expected_and_start, on_data=decoder), message
-            )
-            volts, clipped = decoder.finish(payload)
-        finally:
-            decoder.cancel()
-        return Waveform(volts=volts, dt_s=float(scale["dt_s"]), t0_s=float(scale["t0_s"]), clipped_samples=clipped, channel=channel)
-
-    def _decode_pool(self) -> ThreadPoolExecutor:
-        """One worker thread that decodes block pieces while the rest is still arriving."""
-        if self._pool is None:
-            self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="benchctl-decode")
-        return self._pool
-
-    def close(self) -> None:
-        """Close the session and stop the decode worker."""
-        try:
-            super().close()
-        finally:
-            if self._pool is not None:
-                self._pool.shutdown(wait=True)
-                self._pool = None
+        payload = self._explained(lambda: self.transport.read_block(message, prefix=expected), message)
+        return self._waveform(channel, mode, scale, payload)
 
     def _explained(self, read: Callable[[], bytes | bytearray], message: str) -> bytes | bytearray:
         """Run a block read; if it fails, let the error queue say why when it can."""

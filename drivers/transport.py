@@ -232,7 +232,6 @@ class Transport:
         *,
         expected_bytes: int | None = None,
         prefix: Callable[[str], int | None] | None = None,
-        on_data: Callable[[bytearray, int], None] | None = None,
     ) -> bytes | bytearray:
         """Send ``message`` and read its IEEE 488.2 definite-length block reply fast.
 
@@ -252,9 +251,6 @@ class Transport:
             For a compound query whose reply is ``<text>;<block>`` (IEEE 488.2 response
             units joined by ';'): ``prefix(text)`` gets the text and returns the expected
             payload size (or None). Needs :attr:`direct`.
-        on_data : callable, optional
-            ``on_data(buffer, n_bytes)`` is called as the payload arrives (the first
-            ``n_bytes`` of ``buffer`` are final), so decoding can start before the end.
 
         Returns
         -------
@@ -298,7 +294,7 @@ class Transport:
                     f"{self.resource}: block declares {length} bytes, expected {expected_bytes}",
                     head + digits,
                 )
-        payload = self._read_payload(length, message, on_data)
+        payload = self._read_payload(length, message)
         tail = self._read_exact(1, message)
         if tail not in (b"\n", b"\r"):
             self.drain()
@@ -376,13 +372,7 @@ class Transport:
             return sock, pending
         return None
 
-    def _fill(
-        self,
-        path: tuple[socket.socket, bytearray],
-        out: bytearray,
-        message: str,
-        on_data: Callable[[bytearray, int], None] | None = None,
-    ) -> None:
+    def _fill(self, path: tuple[socket.socket, bytearray], out: bytearray, message: str) -> None:
         """Fill ``out`` exactly from what pyvisa-py buffered, then from the socket in place.
 
         Never reads past ``len(out)``, so what follows stays for the next read.
@@ -402,8 +392,6 @@ class Transport:
         if got:
             view[:got] = pending[:got]
             del pending[:got]
-            if on_data is not None:
-                on_data(out, got)
         deadline = time.monotonic() + self._timeout_s
         try:
             while got < length:
@@ -420,8 +408,6 @@ class Transport:
                 if n == 0:
                     raise ConnectionLost("connection closed by the instrument", message, self.resource)
                 got += n
-                if on_data is not None:
-                    on_data(out, got)
         except OSError as exc:
             raise self._convert(exc, message) from exc
         finally:
@@ -479,16 +465,14 @@ class Transport:
         except (VisaIOError, OSError) as exc:
             raise self._convert(exc, message) from exc
 
-    def _read_payload(
-        self, length: int, message: str, on_data: Callable[[bytearray, int], None] | None = None
-    ) -> bytes | bytearray:
+    def _read_payload(self, length: int, message: str) -> bytes | bytearray:
         """Read exactly ``length`` payload bytes; the termination character plays no part."""
         path = self._socket_path()
         if path is None:
             return self._read_payload_visa(length, message)
         out = bytearray(length)
         try:
-            self._fill(path, out, message, on_data)
+            self._fill(path, out, message)
         except InstrumentTimeout as exc:
             self.drain()
             raise ProtocolError(

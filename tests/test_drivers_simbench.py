@@ -376,8 +376,8 @@ def test_fast_fetch_is_one_exchange_strict_fetch_is_checked(sim_bench) -> None:
 
 
 def test_large_record_decoded_in_pieces_matches_ascii_and_the_clip_count(fast) -> None:
-    # 300 000 samples: the block is decoded in several pieces by the worker thread while it
-    # arrives; the ASCII transfer of the same record (volts as NR3 text) is the reference.
+    # 300 000 samples: the block is decoded in several cache-sized pieces; the ASCII
+    # transfer of the same record (volts as NR3 text) is the reference.
     sim, b = fast
     _power_up(b, 5.0)
     sc, ch = b.scope, b.wiring.output_channel

@@ -269,7 +269,7 @@ def test_block_fallback_through_pyvisa_gives_the_same_bytes(monkeypatch: pytest.
     payload = (np.arange(50_000, dtype=">i2") * 7).tobytes()
     with _block_server(payload) as server, open_resource(server.resource, timeout_s=2.0) as tr:
         fast = tr.read_block("TRACe:DATA? CH1", expected_bytes=len(payload))
-        monkeypatch.setattr(tr, "_read_payload", lambda n, msg, on_data=None: tr._read_payload_visa(n, msg))
+        monkeypatch.setattr(tr, "_read_payload", lambda n, msg: tr._read_payload_visa(n, msg))
         slow = tr.read_block("TRACe:DATA? CH1", expected_bytes=len(payload))
         assert bytes(fast) == bytes(slow) == payload
         assert tr._res.get_visa_attribute(constants.ResourceAttribute.termchar_enabled)
