@@ -146,6 +146,13 @@ class Transport:
         self._timeout_s = float(timeout_s)
         self.stats = ExchangeStats()
         self._session = _pyvisa_py_session(resource)
+        sock = getattr(self._session, "interface", None)
+        # Messages go out with one sendall on the session's socket when it can be reached
+        # (pyvisa-py writes in 4 KiB pieces with a select() before each); replies are read
+        # through pyvisa, which owns the receive buffer.
+        self._sock: socket.socket | None = sock if isinstance(sock, socket.socket) else None
+        self._wterm = str(getattr(resource, "write_termination", "\n") or "")
+        self._encoding = str(getattr(resource, "encoding", "ascii") or "ascii")
         self.nodelay = _set_nodelay(self._session)
         if self._session is not None and hasattr(self._session, "max_recv_size"):
             self._session.max_recv_size = TEXT_CHUNK_BYTES
@@ -177,8 +184,8 @@ class Transport:
             self._resync()
         t0 = time.perf_counter()
         try:
-            self._res.write(message)
-        except (VisaIOError, OSError) as exc:
+            self._send(message)
+        except (VisaIOError, OSError, UnicodeError) as exc:
             raise self._convert(exc, message) from exc
         self.stats.writes += 1
         if logger.isEnabledFor(logging.DEBUG):
@@ -205,8 +212,9 @@ class Transport:
                 self._resync()
             t0 = time.perf_counter()
             try:
-                reply = self._res.query(message)  # pyvisa: write, then read to the terminator
-            except (VisaIOError, OSError, UnicodeDecodeError) as exc:
+                self._send(message)
+                reply = self._res.read()  # pyvisa: read to the terminator, strip it
+            except (VisaIOError, OSError, UnicodeError) as exc:
                 err = self._convert(exc, message)
                 if isinstance(err, InstrumentTimeout) and attempt < retries:
                     attempt += 1
@@ -225,6 +233,12 @@ class Transport:
                     1e3 * (time.perf_counter() - t0),
                 )
             return reply
+
+    def _send(self, message: str) -> None:
+        if self._sock is not None:
+            self._sock.sendall((message + self._wterm).encode(self._encoding))
+        else:
+            self._res.write(message)
 
     def read_block(
         self,
@@ -535,6 +549,8 @@ class Transport:
             return ProtocolError(f"{self.resource}: malformed binary block: {exc}", message)
         if isinstance(exc, UnicodeDecodeError):
             return ProtocolError(f"{self.resource}: reply is not ASCII text", message)
+        if isinstance(exc, UnicodeEncodeError):
+            return ProtocolError(f"{self.resource}: command is not ASCII text", message)
         if isinstance(exc, VisaIOError):
             if exc.error_code == constants.StatusCode.error_timeout:
                 if self._peer_closed():
