@@ -523,3 +523,18 @@ def test_dominant_frequency_finds_a_line_and_rejects_noise() -> None:
     # bin spacing 1/(N dt) = 20 Hz; interpolation resolves far below one bin
     assert dominant_frequency(x, dt_s) == pytest.approx(tone_hz, abs=2.0)
     assert math.isnan(dominant_frequency(rng.normal(0.0, 0.01, t.size), dt_s))
+
+
+def test_discover_speaks_crlf() -> None:
+    import io
+    import json
+
+    from rich.console import Console
+
+    from benchctl.cli import main
+
+    with AltServer() as server:
+        buf = io.StringIO()
+        code = main(["discover", "--no-scan", "--json", "--crlf", server.resource], Console(file=buf, width=300))
+    row = json.loads(buf.getvalue())["resources"][0]
+    assert code == 0 and (row["maker"], row["model"], row["serial"]) == ("Testworks", "ALT-3", "A0042")
