@@ -22,10 +22,15 @@ on loopback by the project, see benchmarks/bench_drivers.py):
   only slower).
 * With the termination character enabled, every read stops at each 0x0A byte, which makes
   binary blocks slow. :meth:`Transport.read_block` reads the IEEE 488.2 header, then exactly
-  the declared byte count with the termination character off and a large receive chunk, and
-  restores both in ``finally``.
+  the declared byte count: straight from the session's socket into one buffer
+  (``recv_into``, after what pyvisa-py already buffered), or, when the socket cannot be
+  reached, through pyvisa with the termination character off and a large receive chunk,
+  both restored in ``finally``.
+* Messages go out with one ``sendall`` on that socket (pyvisa-py sends 4 KiB pieces with a
+  ``select`` before each); replies to text queries are read through pyvisa.
 * A dropped peer does not raise on read under pyvisa-py: the read spins until the timeout.
-  After a timeout the socket is probed; a closed peer becomes ConnectionLost.
+  After a timeout the socket is probed; a closed peer becomes ConnectionLost. A reply that
+  comes after its timeout is dropped before the next exchange (the session is drained).
 
 References
 ----------
@@ -447,11 +452,13 @@ class Transport:
         deadline = time.monotonic() + self._timeout_s
         try:
             while True:
-                cut = got.find(b";")
+                # the separator must come before the block starts ('#'): a payload may hold ';'
+                mark = got.find(b"#")
+                cut = got.find(b";", 0, mark if mark >= 0 else len(got))
                 if cut >= 0:
                     pending[:0] = got[cut + 1 :]
                     return got[:cut].decode("ascii", errors="replace")
-                if got[:1] == b"#" or b"\n" in got or len(got) > limit:
+                if mark >= 0 or b"\n" in got or len(got) > limit:
                     pending[:0] = got
                     self.drain()
                     raise ProtocolError(f"{self.resource}: expected '<text>;<block>' in reply to {message!r}", got[:40])

@@ -273,3 +273,29 @@ def test_block_fallback_through_pyvisa_gives_the_same_bytes(monkeypatch: pytest.
         slow = tr.read_block("TRACe:DATA? CH1", expected_bytes=len(payload))
         assert bytes(fast) == bytes(slow) == payload
         assert tr._res.get_visa_attribute(constants.ResourceAttribute.termchar_enabled)
+
+
+def test_text_then_block_in_one_reply() -> None:
+    # Response units of one compound query are joined by ';' (IEEE 488.2-1992 8.4, from memory)
+    payload = bytes(range(256)) * 40
+    block = encode_block(payload)
+
+    def script(line: bytes, i: int) -> bytes | None:
+        if line == b"TRACe:SCALing? CH1;:TRACe:DATA? CH1":
+            return b"10240,1.0E-06,0,1.0E-03,0;" + block + b"\n"
+        if line == b"TRACe:DATA? CH1":
+            return block + b"\n"  # the text unit is missing
+        return b"Testworks,SCRIPT,0001,1.0\n"
+
+    seen: list[str] = []
+
+    def expected(text: str) -> int:
+        seen.append(text)
+        return int(text.split(",")[0])
+
+    with ScriptServer(script) as server, open_resource(server.resource, timeout_s=0.5) as tr:
+        got = tr.read_block("TRACe:SCALing? CH1;:TRACe:DATA? CH1", prefix=expected)
+        assert bytes(got) == payload and seen == ["10240,1.0E-06,0,1.0E-03,0"]
+        with pytest.raises(ProtocolError, match="expected '<text>;<block>'"):
+            tr.read_block("TRACe:DATA? CH1", prefix=expected)
+        assert tr.query("*IDN?").startswith("Testworks")  # drained, in step again
