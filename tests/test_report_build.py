@@ -7,6 +7,8 @@ import sys
 from html.parser import HTMLParser
 
 import numpy as np
+from hypothesis import HealthCheck, Phase, given, settings
+from hypothesis import strategies as st
 from matplotlib.patches import Rectangle
 
 from benchctl.report import build_report
@@ -255,3 +257,30 @@ def test_rebuild_removes_only_its_own_old_plots(tmp_path):
     (out / "keep.png").write_bytes(PNG_MAGIC)  # someone else's file
     build_report(rf.path)
     assert not (out / "03-gone-other-7.png").exists() and (out / "keep.png").exists()
+
+
+NAMES = ["rail_v", "rail_set_v", "vpp_v", "u_vpp_v", "freq_hz", "current_a", "thd_db", "branch",
+         "direction", "depth_vpp", "m_envelope", "m_predicted", "waveform", "records", "note"]
+CELLS = st.one_of(st.none(), st.booleans(), st.floats(allow_nan=True, allow_infinity=True),
+                  st.sampled_from(["up", "down", "", "x.npz", "../../etc/x.npz", "<b>"]),
+                  st.integers(-3, 3))
+
+
+# No shrink phase: drawing is slow, and the loop must stay bounded in time.
+@settings(max_examples=12, deadline=None, phases=[Phase.explicit, Phase.reuse, Phase.generate],
+          suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(columns=st.lists(st.sampled_from(NAMES), min_size=1, max_size=6, unique=True),
+       data=st.data())
+def test_plots_never_crash_on_odd_points(tmp_path_factory, columns, data):
+    # Robustness: any mix of known column names and odd cell values draws or notes, never raises.
+    rf = RunFolder.create(tmp_path_factory.mktemp("odd") / "run", plan_text="", bench_text="", meta={})
+    n_rows = data.draw(st.integers(1, 5))
+    for i in range(n_rows):
+        row = {"point": str(i), **{c: data.draw(CELLS) for c in columns}}
+        rf.append_point(0, "odd", row, columns)
+    run = load_run(rf.path)
+    out = tmp_path_factory.mktemp("out")
+    result = plots_mod.draw_step(run, run.steps[0], out)
+    for drawn in result.drawn:
+        assert (out / drawn.file).read_bytes()[:8] == PNG_MAGIC
+    assert result.drawn or result.notes  # says something either way

@@ -87,10 +87,17 @@ def draw_step(run: RunView, step: StepData, out_dir: Path) -> StepPlots:
     x = next((c for c in X_CANDIDATES if c in frame.columns and _numeric(frame[c]) is not None), None)
     ctx = _Ctx(run, step, x, {"point", *X_CANDIDATES}, result.notes)
     for kind, fn in KINDS.items():
-        for n, (title, fig) in enumerate(fn(ctx)):
+        with np.errstate(all="ignore"):  # extreme values (1e300) overflow in axis limits
+            figures = fn(ctx)
+        for n, (title, fig) in enumerate(figures):
             name = f"{step.label}-{kind}{'' if n == 0 else f'-{n + 1}'}.png"
-            fig.savefig(out_dir / name, format="png", dpi=100)
+            with np.errstate(all="ignore"):
+                fig.savefig(out_dir / name, format="png", dpi=100)
             result.drawn.append(Drawn(kind, title, name))
+    if not result.drawn and not result.notes:
+        columns = [c for c in frame.columns if c != "point"]
+        result.notes.append(f"nothing to plot: {', '.join(columns) or 'no columns'} "
+                            "(only the rail, or no numbers)")
     return result
 
 
@@ -106,6 +113,11 @@ def _numeric(series: pd.Series) -> np.ndarray | None:
             values.append(math.nan if x is None else x)
     arr = np.asarray(values, dtype=float)
     return arr if np.isfinite(arr).any() else None
+
+
+def _err(u: np.ndarray) -> np.ndarray:
+    """Error-bar half lengths: |u| where finite, else 0 (matplotlib refuses negatives)."""
+    return np.where(np.isfinite(u), np.abs(u), 0.0)
 
 
 def _is_unc(name: str) -> bool:
@@ -163,7 +175,7 @@ def _series_plot(ctx: _Ctx, columns: list[str], title: str, *, shade: bool = Fal
         unc = _uncertainty_column(frame, column)
         yerr = _numeric(frame[unc]) if unc else None
         if yerr is not None:
-            ax.errorbar(x, y, yerr=np.nan_to_num(yerr), fmt=style, ms=3, lw=1, capsize=2, label=column)
+            ax.errorbar(x, y, yerr=_err(yerr), fmt=style, ms=3, lw=1, capsize=2, label=column)
             ctx.used.add(unc)
         else:
             ax.plot(x, y, style, ms=3, lw=1, label=column)
@@ -189,7 +201,7 @@ def _panels(ctx: _Ctx, columns: list[str], title: str) -> Figure:
         unc = _uncertainty_column(frame, column)
         yerr = _numeric(frame[unc]) if unc else None
         if yerr is not None:
-            ax.errorbar(x, y, yerr=np.nan_to_num(yerr), fmt=style, ms=2, lw=0.8, capsize=1.5)
+            ax.errorbar(x, y, yerr=_err(yerr), fmt=style, ms=2, lw=0.8, capsize=1.5)
             ctx.used.add(unc)
         else:
             ax.plot(x, y, style, ms=2, lw=0.8)
@@ -266,7 +278,8 @@ def _hysteresis(ctx: _Ctx) -> list[tuple[str, Figure]]:
     if dcol is None or ctx.x is None:
         return []
     ctx.used.add(dcol)
-    candidates = [c for c in frame.columns if c.startswith("vpp") and c.endswith("_v") and not _is_unc(c)]
+    candidates = [c for c in frame.columns if c.startswith("vpp") and c.endswith("_v") and not _is_unc(c)
+                  and _numeric(frame[c]) is not None]
     if not candidates:
         candidates = [c for c in frame.columns if c not in ("point", dcol, *X_CANDIDATES)
                       and not _is_unc(c) and _numeric(frame[c]) is not None]
@@ -277,11 +290,11 @@ def _hysteresis(ctx: _Ctx) -> list[tuple[str, Figure]]:
     fig, ax = _xy_axes("Sweep up vs down (hysteresis)", f"{ctx.x} (V)", _unit_label(column))
     x = _numeric(frame[ctx.x])
     y = _numeric(frame[column])
-    directions = frame[dcol].astype(str).tolist()
+    directions = ["" if v is None else str(v) for v in frame[dcol].tolist()]
     for label in dict.fromkeys(directions):
         mask = np.array([d == label for d in directions])
         order = np.argsort(x[mask], kind="stable")
-        ax.plot(x[mask][order], y[mask][order], "o-", ms=3, lw=1, label=f"{label}")
+        ax.plot(x[mask][order], y[mask][order], "o-", ms=3, lw=1, label=label.strip() or "(blank)")
     ax.legend(fontsize="small", title=dcol)
     ctx.used.add(column)
     return [("Sweep up vs down (hysteresis)", fig)]
@@ -306,7 +319,7 @@ def _modulation(ctx: _Ctx) -> list[tuple[str, Figure]]:
         style = "s--" if "pred" in column else "o-"
         unc = _uncertainty_column(frame, column)
         if unc and _numeric(frame[unc]) is not None:
-            ax.errorbar(d[order], y[order], yerr=np.nan_to_num(_numeric(frame[unc])[order]),
+            ax.errorbar(d[order], y[order], yerr=_err(_numeric(frame[unc])[order]),
                         fmt=style, ms=3, lw=1, capsize=2, label=column)
             ctx.used.add(unc)
         else:
