@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import io
 import json
+import math
 import os
 import signal
 import subprocess
@@ -103,8 +104,13 @@ def _assert_safe(sim):
 def _assert_intact(run_dir):
     folder = RunFolder.open(run_dir)
     assert folder.damage == ()  # no torn or merged lines
-    rows = [r for i, name in folder.steps() for r in folder.points(i, name)]
+    rows = [{**r, "_step": name} for i, name in folder.steps() for r in folder.points(i, name)]
     return folder, rows
+
+
+def _rows_of(run_dir, step):
+    folder = RunFolder.open(run_dir)
+    return sum(len(folder.points(i, name)) for i, name in folder.steps() if name == step)
 
 
 @pytest.mark.parametrize("seed", [1, 5])
@@ -230,7 +236,7 @@ def test_a_resumed_run_gives_the_same_parameters_as_an_uninterrupted_one(tmp_pat
     with SimulatedBench(seed=11) as sim:
         th, result = _run_in_thread(["run", str(plan), "--bench", str(_bench_file(sim, tmp_path, 0.5, "b.toml")),
                                      "--out", str(run_dir), *QUIET])
-        _wait_for_points(run_dir, 25)
+        _wait_for_points(run_dir, 45)  # the sweep (38 points) done, the thresholds begun
         sim.inject("scope", "drop_after", n=0)
         th.join(timeout=60)
         assert result["code"] == 3
@@ -243,7 +249,26 @@ def test_a_resumed_run_gives_the_same_parameters_as_an_uninterrupted_one(tmp_pat
     assert folder.meta["resumes"] == 1 and folder.meta["points_replayed"] == len(before)
     whole = json.loads((tmp_path / "whole" / "parameters.json").read_text())
     resumed = json.loads((run_dir / "parameters.json").read_text())
-    assert {k: v["value"] for k, v in resumed.items()} == {k: v["value"] for k, v in whole.items()}
+    assert resumed.keys() == whole.keys()
+    # Every point the broken run recorded is replayed, not re-measured, so the steps it had
+    # finished give bit-identical parameters. Later steps ran on a fresh bench whose board
+    # has another history (how long it has run, which the simulated physics keeps, as a
+    # real board would): they agree within twice their combined standard uncertainty, or
+    # within 5 % where a parameter carries none (R^2, largest deviation).
+    counts = {}
+    for row in before:
+        counts[row["_step"]] = counts.get(row["_step"], 0) + 1
+    finished = {step for step, n in counts.items() if n == _rows_of(tmp_path / "whole", step)}
+    assert finished, counts
+    for name, p in whole.items():
+        q = resumed[name]
+        if p["step"] in finished or p["value"] is None:
+            assert q["value"] == p["value"], name
+        elif p["uncertainty"]:
+            u = math.hypot(p["uncertainty"], q["uncertainty"] or 0.0)
+            assert abs(q["value"] - p["value"]) <= 2.0 * u, (name, p["value"], q["value"], u)
+        else:
+            assert q["value"] == pytest.approx(p["value"], rel=0.05), name
 
 
 def test_resume_refuses_a_different_plan(tmp_path):
