@@ -119,6 +119,7 @@ def test_report_files_and_parameters_table(tmp_path):
     assert any(r == ["supply", "SIMLAB,PSU-1,17,1.0"] for t in page.tables for r in t)
     facts = {r[0]: r[1] for r in page.tables[0]}
     assert facts["Board"] == "beacon" and facts["Serial"] == "B0001" and facts["Status"] == "complete"
+    assert facts["Spec limits"] == "1 pass, 1 fail (startup_v)"
     # every image referenced relatively, present, and a real PNG
     sources = [img["src"] for img in page.images]
     assert sources and all("/" not in s for s in sources)

@@ -217,3 +217,20 @@ def test_sanitising():
     assert sanitise_name("") == "step"
     assert sanitise_key("../x") == "___x"
     assert sanitise_key("4.500") == "4.500"
+
+
+@pytest.mark.skipif(not os.path.isdir("/proc/self/fd"), reason="needs /proc to name file descriptors")
+def test_every_row_is_fsynced(tmp_path, monkeypatch):
+    # Durability: each row reaches the disk before append_point returns (POSIX fsync(2)).
+    rf = _new(tmp_path)
+    synced = []
+    real_fsync = os.fsync
+
+    def naming_fsync(fd):
+        synced.append(os.readlink(f"/proc/self/fd/{fd}"))
+        real_fsync(fd)
+
+    monkeypatch.setattr(os, "fsync", naming_fsync)
+    for i in range(3):
+        rf.append_point(0, "s", {"point": str(i), "rail_v": float(i)}, ["rail_v"])
+    assert synced.count(str(rf.points_file(0, "s").resolve())) == 3

@@ -97,6 +97,11 @@ def _run_facts(run: RunView) -> list[tuple[str, Any]]:
         ("Board", run.board or None), ("Revision", run.revision or None), ("Serial", run.serial or None),
         ("Status", run.status),
     ]
+    verdicts = [p.get("verdict") for p in run.parameters.values()]
+    if any(v in ("pass", "fail") for v in verdicts):
+        failed = [n for n, p in run.parameters.items() if p.get("verdict") == "fail"]
+        text = f"{verdicts.count('pass')} pass, {len(failed)} fail"
+        facts.append(("Spec limits", text + (f" ({', '.join(failed)})" if failed else "")))
     for key, label in (("message", "Outcome"), ("exit_code", "Exit code"), ("started", "Started"),
                        ("ended", "Ended"), ("host", "Host"), ("software_version", "Software version"),
                        ("bench", "Bench"), ("seed", "Seed"), ("resumes", "Resumes"),
