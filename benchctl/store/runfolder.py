@@ -315,25 +315,14 @@ class RunFolder:
         Torn and malformed lines are skipped and added to :attr:`damage`. A step with no
         file yet has no points.
         """
-        table = self._read_table(self._points_path(step_index, step_name))
-        if table.header is None:
-            return []
-        out = []
-        for _, fields in table.rows:
-            record: dict[str, Any] = {"point": cells.decode_text(fields[0])}
-            for name, cell in zip(table.header[1:], fields[1:], strict=True):
-                record[name] = cells.decode(cell)
-            out.append(record)
-        return out
+        return _typed_rows(self._read_table(self._points_path(step_index, step_name)))
 
     def points_frame(self, step_index: int, step_name: str):  # -> pandas.DataFrame
         """Return the points of a step as a pandas DataFrame (columns in file order)."""
         import pandas as pd
 
         table = self._read_table(self._points_path(step_index, step_name))
-        rows = self.points(step_index, step_name)
-        columns = table.header or ["point"]
-        return pd.DataFrame(rows, columns=columns)
+        return pd.DataFrame(_typed_rows(table), columns=table.header or ["point"])
 
     def steps(self) -> list[tuple[int, str]]:
         """Return ``(step_index, step_name)`` of every points file present, in order."""
@@ -537,6 +526,18 @@ class RunFolder:
                 raise ConfigError(self._rel(side), f"line {n}", f"expected a line number, got {shorten(text)!r}")
             out.add(int(text))
         return out
+
+
+def _typed_rows(table: _Table) -> list[dict[str, Any]]:
+    if table.header is None:
+        return []
+    out = []
+    for _, fields in table.rows:
+        record: dict[str, Any] = {"point": cells.decode_text(fields[0])}
+        for name, cell in zip(table.header[1:], fields[1:], strict=True):
+            record[name] = cells.decode(cell)
+        out.append(record)
+    return out
 
 
 def _write_all(fd: int, data: bytes) -> None:
