@@ -25,7 +25,7 @@ from numpy.typing import ArrayLike, NDArray
 from scipy.signal import hilbert, welch
 
 from benchctl.analysis._common import as_record, check_positive
-from benchctl.analysis.spectrum import HarmonicAnalysis, _harmonic_lsq, harmonics
+from benchctl.analysis.spectrum import HarmonicAnalysis, _gram, _lines_basis, _project, harmonics
 from benchctl.analysis.waveform import fit_sine
 from benchctl.errors import MeasurementError
 
@@ -189,11 +189,16 @@ def modulation_index_envelope(
 def modulation_index_spectrum(
     y: ArrayLike, *, fs_hz: float, carrier_hz: float, mod_hz: float
 ) -> ModulationIndex:
-    """Modulation index from the carrier and the sidebands at fc +/- fm.
+    """Modulation index from the carrier and the sidebands at fc +/- fm, rejecting FM.
 
-    Each sideband of a tone-modulated AM signal has amplitude m Ac / 2, so
-    ``m = (A_usb + A_lsb) / Ac``. The three lines are fitted together by least squares at
-    the given frequencies (no window, no need for whole cycles).
+    Each sideband of a tone-modulated AM signal has amplitude m Ac / 2. An oscillator whose
+    frequency also follows its rail (frequency pushing) adds narrow-band FM sidebands of
+    amplitude beta Ac / 2 at the same frequencies, in phase on one side and in antiphase on
+    the other, so magnitudes alone (``(A_usb + A_lsb) / Ac``) read high. With the three lines
+    fitted by least squares as complex amplitudes U, C, L (common time origin), the AM part
+    is ``m = |U/C + conj(L/C)|`` and the FM part ``beta = |U/C - conj(L/C)|``: the FM pair
+    cancels in the first, the AM pair in the second (narrow-band approximation, small m and
+    beta). Without FM this reduces to the magnitude rule.
 
     Parameters
     ----------
@@ -203,6 +208,11 @@ def modulation_index_spectrum(
         Sample rate, Hz.
     carrier_hz, mod_hz : float
         Carrier and modulating frequencies, Hz (mod_hz < carrier_hz).
+
+    References
+    ----------
+    S. Haykin, *Communication Systems*, 4th ed., Wiley 2001, ch. 2 (AM sidebands) and
+    ch. 2.7 (narrow-band FM as a carrier plus a quadrature sideband pair); from memory.
     """
     fs = check_positive("fs_hz", fs_hz)
     fc = check_positive("carrier_hz", carrier_hz)
@@ -212,25 +222,49 @@ def modulation_index_spectrum(
             f"need mod_hz < carrier_hz and carrier_hz + mod_hz < fs_hz/2; got {fc=}, {fm=}, {fs=}"
         )
     arr = as_record(y, min_samples=16)
-    amps, resid, var_factor = _harmonic_lsq(arr, [fc / fs, (fc + fm) / fs, (fc - fm) / fs])
-    ac, usb, lsb = (float(a) for a in amps)
+    coef, resid, var_factor = _line_phasors(arr, [fc / fs, (fc + fm) / fs, (fc - fm) / fs])
+    carrier, upper, lower = coef
+    ac, usb, lsb = abs(carrier), abs(upper), abs(lower)
     if ac <= 0.0:
         raise MeasurementError("no carrier line found")
     dof = max(arr.size - 7, 1)
     u_line = math.sqrt(float(resid @ resid) / dof * var_factor)
-    m = (usb + lsb) / ac
+    m = abs(upper / carrier + np.conj(lower / carrier))
+    beta = abs(upper / carrier - np.conj(lower / carrier))
     u_m = math.sqrt(2.0 * (u_line / ac) ** 2 + (m * u_line / ac) ** 2)
     asym = 20.0 * math.log10(usb / lsb) if usb > 0 and lsb > 0 else math.nan
     return ModulationIndex(
-        m=m,
+        m=float(m),
         u_m=u_m,
         carrier_v=ac,
         emax_v=ac * (1.0 + m),
         emin_v=ac * (1.0 - m),
         mod_hz=fm,
         sideband_asymmetry_db=asym,
-        method="spectrum: least-squares carrier and sideband lines, m = (Ausb + Alsb) / Ac",
+        method=f"spectrum: least-squares carrier and sideband phasors, m = |U/C + conj(L/C)| "
+        f"(FM part beta = {beta:.3g} rejected)",
     )
+
+
+def _line_phasors(
+    y: NDArray[np.float64], freqs_cycles: list[float]
+) -> tuple[list[complex], NDArray[np.float64], float]:
+    """Least-squares DC + lines, as complex amplitudes P with line = Re(P exp(j w k')).
+
+    Same fit as :func:`benchctl.analysis.spectrum._harmonic_lsq` (centred time k'), keeping
+    the phases: a line c cos + s sin is the phasor c - j s.
+    """
+    n = y.size
+    basis = _lines_basis(freqs_cycles, n)
+    h = _gram([2.0 * math.pi * f for f in freqs_cycles], n)
+    try:
+        coef = np.linalg.solve(h, _project(basis, y))
+    except np.linalg.LinAlgError as exc:
+        raise MeasurementError("spectral lines too close to separate in this record") from exc
+    resid = y - np.einsum("i,ij->j", coef, basis)
+    phasors = [complex(c, -s) for c, s in zip(coef[1::2], coef[2::2], strict=True)]
+    var_factor = float(np.mean(np.diag(np.linalg.inv(h))[1:]))
+    return phasors, resid, var_factor
 
 
 def envelope_distortion(

@@ -66,7 +66,8 @@ class Events:
 
 
 def now_iso() -> str:
-    return datetime.now(UTC).isoformat(timespec="seconds")
+    """UTC time in ISO 8601 with a Z suffix, as the run folder writes it."""
+    return datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
 @contextmanager
