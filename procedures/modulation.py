@@ -38,8 +38,8 @@ MOD_COLUMNS: tuple[Column, ...] = (
     Column("depth_vpp", "V", "generator amplitude summed onto the rail (0 for static points)"),
     Column("m_envelope", "", "modulation index from the envelope"),
     Column("u_m_envelope", "", "standard uncertainty of m_envelope"),
-    Column("m_spectrum", "", "index from the sidebands at fc +/- fm; reads high when frequency "
-           "pushing adds FM sidebands (index beta = pushing x depth / 2 / fm)"),
+    Column("m_spectrum", "", "index from the sideband phasors at fc +/- fm, with the FM "
+           "sidebands of frequency pushing rejected (a cross-check of m_envelope)"),
     Column("m_predicted", "", "quasi-static prediction from the static sensitivity"),
     Column("envelope_thd_db", "dB", "THD of the recovered envelope (IEEE 1241)"),
     Column("carrier_vpp_v", "V", "carrier Vpp under modulation (2 x mean envelope)"),
