@@ -15,7 +15,7 @@ $(STAMP): pyproject.toml
 venv: $(STAMP)
 
 demo: $(STAMP)
-	$(BIN)/benchctl demo --out runs/demo
+	$(BIN)/benchctl demo --out runs/demo --replace
 
 test: $(STAMP)
 	$(BIN)/ruff check .

@@ -299,3 +299,25 @@ def test_sigterm_mid_run_ends_in_safe_state_and_exit_3(tmp_path):
     assert b"aborted" in out and b"SIGTERM" in out
     folder, rows = _assert_intact(run_dir)
     assert folder.meta["status"] == "aborted" and len(rows) >= 3
+
+
+def test_json_mode_prints_one_json_object_per_line(tmp_path):
+    plan = PLAN.split("[[steps]]")[0] + """[[steps]]
+procedure = "rail_sweep"
+[steps.params]
+start_v = 3.5
+stop_v = 4.5
+step_v = 0.5
+down = false
+"""
+    with SimulatedBench(seed=6) as sim:
+        code, text = _run(["run", str(_plan_file(tmp_path, plan)), "--bench", str(_bench_file(sim, tmp_path)),
+                           "--out", str(tmp_path / "run"), "--json"])
+    assert code == 0, text
+    events = [json.loads(line) for line in text.splitlines() if line.strip()]
+    kinds = [e["event"] for e in events]
+    assert kinds[0] == "run_started" and kinds[-1] == "run_finished"
+    points = [e for e in events if e["event"] == "point"]
+    assert [p["row"]["rail_set_v"] for p in points] == pytest.approx([3.5, 4.0, 4.5])
+    assert events[-1]["status"] == "complete" and events[-1]["exit_code"] == 0
+    assert "supply off (read back)" in events[-1]["safe_state"]
