@@ -184,6 +184,17 @@ class Instrument:
             extra = f" (+{count - 1} more)" if count > 1 else ""
             raise InstrumentError(first[0], first[1] + extra, suspects, self.resource)
 
+    def drain_errors(self) -> list[tuple[int, str]]:
+        """Read the error queue empty and return its entries (nothing is raised)."""
+        entries: list[tuple[int, str]] = []
+        for _ in range(MAX_ERRORS_PER_CHECK):
+            code, message = self._parse(self._error_op, self.transport.query(self._error_text))
+            if code == 0:
+                break
+            entries.append((code, message))
+        self._unchecked.clear()
+        return entries
+
     def _raise_if_error(self, entry: tuple[int, str], command: str, *, more: bool) -> None:
         code, message = entry
         if code != 0:

@@ -9,6 +9,7 @@ validation, so a broken dialect file is reported there too.
 
 from __future__ import annotations
 
+import logging
 import math
 import time
 import tomllib
@@ -27,6 +28,8 @@ from .supply import Supply
 from .transport import Transport, open_resource, resource_shape_ok
 
 __all__ = ["Bench", "BenchConfig", "RoleConfig", "Wiring", "load_bench_file", "load_bench_text", "open_bench"]
+
+logger = logging.getLogger(__name__)
 
 _BENCH_KEYS = {"name", "visa_library"}
 _ROLE_KEYS = {"resource", "dialect", "timeout_s", "channel"}
@@ -285,6 +288,9 @@ def open_bench(
 ) -> Bench:
     """Open, identify (``*IDN?``) and return the bench's three instruments.
 
+    Errors an instrument had queued before this session are read out and logged (not
+    raised), so they are not blamed on the first command of the run.
+
     Parameters
     ----------
     config : BenchConfig
@@ -328,6 +334,9 @@ def open_bench(
             raise
         try:
             idn[role] = inst.identify()  # the probe: a refused SOCKET fails here
+            stale = inst.drain_errors()  # queued before this session: logged, not ours to raise
+            if stale:
+                logger.info("%s: %d error(s) queued before this session: %s", rc.resource, len(stale), stale)
         except BaseException:
             inst.close()
             raise

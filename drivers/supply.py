@@ -5,7 +5,7 @@ from __future__ import annotations
 import math
 from typing import Any
 
-from benchctl.errors import InstrumentTimeout, SafetyError
+from benchctl.errors import InstrumentError, InstrumentTimeout, SafetyError
 
 from .base import Instrument, register_driver
 
@@ -139,6 +139,8 @@ class Supply(Instrument):
         ------
         InstrumentTimeout
             Not within tolerance in time (the message gives the last reading).
+        InstrumentError
+            Not within tolerance because the over-voltage protection has tripped.
         """
         if not tol_v > 0:
             raise ValueError(f"{tol_v=} must be > 0")
@@ -155,6 +157,14 @@ class Supply(Instrument):
             if self.clock() >= deadline:
                 break
             self.sleep(poll_s)
+        if self.protection_tripped():  # the real reason it will never settle
+            raise InstrumentError(
+                0,
+                f"over-voltage protection tripped; the supply output is off (settling at {target_v:g} V, "
+                f"last reading {reading_v:g} V)",
+                "",
+                self.resource,
+            )
         raise InstrumentTimeout(
             f"supply not settled at {target_v:g} V +/- {tol_v:g} V (last reading {reading_v:g} V)",
             "",

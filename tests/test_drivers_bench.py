@@ -154,9 +154,16 @@ def test_dialect_numbers_follow_scpi_response_rules() -> None:
     assert err.parse('0,"No error"') == (0, "No error")
 
 
+def _idn_and_errors(line: bytes, i: int) -> bytes | None:
+    if line.strip() == b"*IDN?":
+        return b"Testworks,SCRIPT,0001,1.0\n"
+    if line.strip() == b"SYSTem:ERRor:NEXT?":
+        return b'0,"No error"\n'
+    return None
+
+
 def test_open_bench_closes_what_it_opened_when_a_role_fails() -> None:
-    idn = b"Testworks,SCRIPT,0001,1.0\n"
-    with ScriptServer(lambda line, i: idn if line.strip() == b"*IDN?" else None) as ok:
+    with ScriptServer(_idn_and_errors) as ok:
         refused = socket.create_server(("127.0.0.1", 0))
         dead_port = refused.getsockname()[1]
         refused.close()

@@ -395,3 +395,21 @@ def test_large_record_decoded_in_pieces_matches_ascii_and_the_clip_count(fast) -
     # ASCII carries 7 significant digits (the simulated scope's "%.6E")
     np.testing.assert_allclose(wf.volts, text_wf.volts, rtol=1e-6, atol=1e-9)
     assert wf.clipped_samples == int(sc.ask("clipped", channel=ch)) > 1000
+
+
+def test_errors_queued_before_the_session_are_logged_not_blamed(sim_bench, caplog) -> None:
+    sim_bench.inject("supply", "push_error", code=-310, message="left from before")
+    cfg = load_bench_text(sim_bench.bench_toml())
+    with caplog.at_level("INFO", logger="benchctl.drivers.bench"):
+        with open_bench(cfg, max_voltage_v=6.0) as b:
+            assert sim_bench.command_log("supply")[:3] == ["*IDN?", "SYSTem:ERRor:NEXT?", "SYSTem:ERRor:NEXT?"]
+            b.supply.output(False)  # a checked point: the old error must not be blamed on it
+    assert any("-310" in r.getMessage() and "before this session" in r.getMessage() for r in caplog.records)
+
+
+def test_wait_settled_on_a_tripped_supply_says_so(fast) -> None:
+    sim, b = fast
+    _power_up(b, 5.0)
+    sim.inject("supply", "trip_ovp")
+    with pytest.raises(InstrumentError, match="over-voltage protection tripped"):
+        b.supply.wait_settled(5.0, tol_v=0.01, timeout_s=0.2)
