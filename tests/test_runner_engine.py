@@ -57,6 +57,9 @@ class FakeSupply:
     def is_output_on(self):
         return self.on
 
+    def get_voltage(self):
+        return self.v
+
     def protection_tripped(self):
         return False
 
@@ -82,13 +85,15 @@ class FakeGenerator:
 
 
 class FakeBench:
-    def __init__(self, supply_fail_on=None):
+    def __init__(self, supply_fail_on=None, same_idn=False):
         self.calls = []
         self.supply = FakeSupply(self.calls, supply_fail_on)
         self.generator = FakeGenerator(self.calls)
         self.scope = None
         self.wiring = None
         self.idn = {"supply": "fake,supply,1,0", "generator": "fake,gen,2,0", "scope": "fake,scope,3,0"}
+        if same_idn:
+            self.idn["scope"] = self.idn["supply"]
         self.closed = False
 
     @property
@@ -266,3 +271,11 @@ def test_log_records_the_safe_state(tmp_path, caplog):
     with caplog.at_level(logging.INFO, logger="benchctl.runner"):
         execute(plan, open_bench=FakeBench, folder=_folder(tmp_path, plan))
     assert any("safe state: generator off (read back), supply off (read back)" in r.getMessage() for r in caplog.records)
+
+
+def test_one_instrument_named_for_two_roles_is_bad_input_and_nothing_is_enabled(tmp_path):
+    plan = _plan()
+    bench = FakeBench(same_idn=True)
+    out = execute(plan, open_bench=lambda: bench, folder=_folder(tmp_path, plan))
+    assert out.exit_code == 2 and "two roles" in out.message
+    assert ("supply", "output", True) not in bench.calls and out.safe_state.verified

@@ -119,6 +119,7 @@ def execute(
         try:
             bench = open_bench()
             folder.update_meta(instruments={role: _idn_dict(idn) for role, idn in bench.idn.items()})
+            check_roles(bench)
             arm(bench, plan.limits, log)
             shared = shared_result_names(plan)
             for step in plan.steps:
@@ -195,6 +196,29 @@ def _run_step(step, plan, bench, folder, history, clock, abort, events, counts) 
     history[step.name] = record
     events.step_finished(step.name, record.results)
     return record
+
+
+def check_roles(bench: Any) -> None:
+    """Each role is a different instrument, and answers a query of its role.
+
+    Raises
+    ------
+    ConfigError
+        Two roles answered ``*IDN?`` with the same maker, model and serial (a bench file that
+        names one instrument twice).
+    InstrumentError, InstrumentTimeout
+        An instrument does not answer its role's query (it is not what the bench file says).
+    """
+    seen: dict[tuple[str, ...], str] = {}
+    for role, idn in bench.idn.items():
+        key = tuple(str(getattr(idn, f, "")) for f in ("maker", "model", "serial")) if hasattr(idn, "serial") else (str(idn),)
+        if key in seen:
+            raise ConfigError("bench", f"roles.{role}", f"answers *IDN? like role {seen[key]!r} ({', '.join(key)}): "
+                              "one instrument cannot play two roles")
+        seen[key] = role
+    bench.supply.get_voltage()
+    bench.generator.is_output_on()
+    log.info("roles checked: %s", ", ".join(f"{r} = {i}" for r, i in bench.idn.items()))
 
 
 def check_bench(bench: Any) -> None:
