@@ -19,6 +19,8 @@ import threading
 import time
 
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from rich.console import Console
 
 from benchctl.cli import main
@@ -321,3 +323,59 @@ down = false
     assert [p["row"]["rail_set_v"] for p in points] == pytest.approx([3.5, 4.0, 4.5])
     assert events[-1]["status"] == "complete" and events[-1]["exit_code"] == 0
     assert "supply off (read back)" in events[-1]["safe_state"]
+
+
+_junk = st.one_of(st.integers(-5, 50), st.floats(allow_nan=True), st.text(max_size=5), st.booleans(),
+                  st.lists(st.integers(-1, 9), max_size=2))
+_targets = st.sampled_from(["max_rail_v", "current_limit_a", "ovp_v", "ramp_v_per_s", "start_v", "stop_v",
+                            "step_v", "down", "records", "procedure"])
+SMALL = PLAN.split("[[steps]]")[0] + """[[steps]]
+procedure = "rail_sweep"
+[steps.params]
+start_v = 3.5
+stop_v = 4.5
+step_v = 0.5
+down = false
+records = 1
+"""
+
+
+def _edit(text, key, value):
+    """Replace the first assignment of ``key`` by ``value`` written as TOML."""
+    lines = text.splitlines()
+    cell = repr(value) if isinstance(value, float) else json.dumps(value)
+    for i, line in enumerate(lines):
+        if line.startswith(f"{key} = "):
+            lines[i] = f"{key} = {cell}"
+            break
+    return "\n".join(lines) + "\n"
+
+
+def test_generated_bad_plans_exit_2_with_one_line_each_and_send_nothing(tmp_path):
+    roles = ("supply", "generator", "scope")
+    with SimulatedBench(seed=1) as sim:
+        bench = str(_bench_file(sim, tmp_path))
+        counter = iter(range(10**6))
+
+        @settings(max_examples=30, deadline=None)
+        @given(edits=st.lists(st.tuples(_targets, _junk), min_size=1, max_size=3))
+        def check(edits):
+            text = SMALL
+            for key, value in edits:
+                text = _edit(text, key, value)
+            n = next(counter)
+            plan = tmp_path / f"gen-{n}.toml"
+            plan.write_text(text)
+            out_dir = tmp_path / f"gen-run-{n}"
+            sent = {role: len(sim.command_log(role)) for role in roles}
+            code, out = _run(["run", str(plan), "--bench", bench, "--out", str(out_dir), "--quiet"])
+            if code == 2:
+                lines = [ln for ln in out.splitlines() if ln.strip()]
+                assert lines and all(ln.startswith("benchctl: ") for ln in lines), out
+                assert not out_dir.exists()
+                assert {role: len(sim.command_log(role)) for role in roles} == sent  # nothing sent
+            else:  # the edits happened to leave a valid plan: it ran, and ended safely
+                assert code in (0, 1), out
+                _assert_safe(sim)
+
+        check()
