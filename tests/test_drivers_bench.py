@@ -220,3 +220,31 @@ def test_discover_table_and_bad_resource() -> None:
     buf = io.StringIO()
     assert main(["discover", "--no-scan", "not-a::resource"], Console(file=buf, width=200)) == 2
     assert "not a VISA resource string" in buf.getvalue()
+
+
+def test_dialect_format_comment_lists_the_catalogue() -> None:
+    # The header comment of scpi1999.toml documents every operation, "*" marking the ones a
+    # dialect must define; it must say what the code checks.
+    import re
+
+    from benchctl.drivers.dialect import DIALECT_DIR
+
+    text = (DIALECT_DIR / "scpi1999.toml").read_text(encoding="utf-8")
+    block = text.split("# Operations (* = every dialect for the role must define it):")[1].split("# ----")[0]
+    sections: dict[str, str] = {}
+    role = ""
+    for line in block.splitlines():
+        m = re.match(r"#\s+(common|supply|generator|scope):(.*)", line)
+        if m:
+            role, line = m.group(1), m.group(2)
+        sections[role] = sections.get(role, "") + " " + line.split("(")[0]
+    for role, ops in OPERATIONS.items():
+        documented = {
+            name: star == "*"
+            for name, star in re.findall(r"\b([a-z][a-z0-9_]+)(\*?)", sections["common"] + sections[role])
+        }
+        for op, spec in ops.items():
+            assert op in documented, (role, op)
+            # the two fetches are each optional but one of them is needed
+            if op not in ("fetch_block", "fetch_ascii"):
+                assert documented[op] == spec.needed, (role, op)
