@@ -376,42 +376,89 @@ def _analyse(
     )
 
 
+@dataclass(frozen=True, slots=True)
+class _Periodogram:
+    """Hann periodogram of a record: the complex spectrum, its powers and the noise floor."""
+
+    spec: NDArray[np.complex128]
+    power: NDArray[np.float64]
+    floor: float
+    noise_var: float
+
+
+def _periodogram(y: NDArray[np.float64]) -> _Periodogram:
+    """Hann-window periodogram; ``noise_var`` is the white-noise variance implied by the
+    median bin, V^2 (see :func:`_prominence_db`)."""
+    win = _hann(y.size)
+    spec = np.fft.rfft((y - y.mean()) * win)
+    p = spec.real**2 + spec.imag**2
+    p[0] = 0.0
+    floor = float(np.median(p[1:]))
+    return _Periodogram(spec, p, floor, floor / math.log(2.0) / _dot(win, win))
+
+
+def _peak_bin(pg: _Periodogram, n: int, band_cycles: tuple[float, float] | None) -> int | None:
+    """Index of the strongest bin (inside the band); None when the band holds no line."""
+    p = pg.power
+    if band_cycles is None:
+        return 1 + int(np.argmax(p[1:]))
+    lo_k = max(1, int(math.floor(band_cycles[0] * n)))
+    hi_k = min(p.size - 1, int(math.ceil(band_cycles[1] * n)))
+    if hi_k < lo_k:
+        return None
+    k = lo_k + int(np.argmax(p[lo_k : hi_k + 1]))
+    if (k > 1 and p[k - 1] > p[k]) or (k + 1 < p.size and p[k + 1] > p[k]):
+        return -k  # the band's largest bin is the skirt of a line outside it
+    return k
+
+
+def _line_cycles(pg: _Periodogram, k: int, n: int) -> float:
+    """Frequency of the line at bin ``k``, cycles/sample.
+
+    Two-bin magnitude ratio of the Hann window: a tone at bin k + d (0 <= d <= 1) gives
+    |X[k+1]| / |X[k]| = (1 + d) / (2 - d), so d = (2r - 1) / (r + 1) (Grandke, IEEE Trans.
+    Instrum. Meas. 32(2), 1983; exact for one tone without leakage, from memory). Near DC
+    or Nyquist, or for a flat peak, the log-parabola of the three bins is used instead.
+    """
+    p = pg.power
+    if not 2 <= k < p.size - 2 or p[k] <= 0.0:
+        frac = 0.0
+        if 1 <= k < p.size - 1 and p[k] > 0.0:
+            la, lb, lc = np.log(np.maximum(p[k - 1 : k + 2], np.finfo(float).tiny))
+            den = la - 2.0 * lb + lc
+            frac = float(np.clip(0.5 * (la - lc) / den, -0.5, 0.5)) if den < 0.0 else 0.0
+        return (k + frac) / n
+    mag = np.sqrt(p[k - 1 : k + 2])
+    side = 1 if mag[2] >= mag[0] else -1
+    r = float(mag[1 + side] / mag[1])
+    d = float(np.clip((2.0 * r - 1.0) / (r + 1.0), 0.0, 1.0))
+    return (k + side * d) / n
+
+
 def _prominence_db(
-    y: NDArray[np.float64], band_cycles: tuple[float, float] | None = None
+    y: NDArray[np.float64], band_cycles: tuple[float, float] | None = None,
+    pg: _Periodogram | None = None,
 ) -> tuple[float, float, float]:
     """Strongest line of the Hann periodogram (inside a band, if given).
 
     Returns (its height over the median of the whole periodogram in dB, its frequency in
-    cycles/sample by log-parabola interpolation, the white-noise variance implied by the
-    median, V^2). A white-noise bin is exponentially distributed with mean sigma^2 sum(w^2),
-    so median / ln 2 / sum(w^2) estimates sigma^2 unmoved by a few lines (harmonics, spurs).
+    cycles/sample, the white-noise variance implied by the median, V^2). A white-noise bin
+    is exponentially distributed with mean sigma^2 sum(w^2), so median / ln 2 / sum(w^2)
+    estimates sigma^2 unmoved by a few lines (harmonics, spurs).
     """
     n = y.size
-    win = _hann(n)
-    x = (y - y.mean()) * win
-    p = np.abs(np.fft.rfft(x)) ** 2
-    p[0] = 0.0
-    floor = float(np.median(p[1:]))
-    noise_var = floor / math.log(2.0) / float(win @ win)
-    if band_cycles is not None:
-        lo_k = max(1, int(math.floor(band_cycles[0] * n)))
-        hi_k = min(p.size - 1, int(math.ceil(band_cycles[1] * n)))
-        if hi_k < lo_k:
-            return 0.0, 0.5 * (band_cycles[0] + band_cycles[1]), noise_var
-        k = lo_k + int(np.argmax(p[lo_k : hi_k + 1]))
-        if (k > 1 and p[k - 1] > p[k]) or (k + 1 < p.size and p[k + 1] > p[k]):
-            # the band's largest bin is the skirt of a line outside it: no line in band
-            return -math.inf, (k + 0.0) / n, noise_var
-    else:
-        k = 1 + int(np.argmax(p[1:]))
-    frac = 0.0
-    if 1 <= k < p.size - 1 and p[k] > 0.0:
-        la, lb, lc = np.log(np.maximum(p[k - 1 : k + 2], np.finfo(float).tiny))
-        den = la - 2.0 * lb + lc
-        frac = float(np.clip(0.5 * (la - lc) / den, -0.5, 0.5)) if den < 0.0 else 0.0
-    if floor <= 0.0:
-        return (math.inf if p[k] > 0 else 0.0), (k + frac) / n, noise_var
-    return db10(float(p[k]) / floor), (k + frac) / n, noise_var
+    pg = _periodogram(y) if pg is None else pg
+    k = _peak_bin(pg, n, band_cycles)
+    if k is None:
+        assert band_cycles is not None
+        return 0.0, 0.5 * (band_cycles[0] + band_cycles[1]), pg.noise_var
+    if k < 0:
+        return -math.inf, -k / n, pg.noise_var
+    f = _line_cycles(pg, k, n)
+    peak = float(pg.power[k])
+    if pg.floor <= 0.0:
+        return (math.inf if peak > 0 else 0.0), f, pg.noise_var
+    return db10(peak / pg.floor), f, pg.noise_var
 
 
 def detect_oscillation(
@@ -426,8 +473,10 @@ def detect_oscillation(
     """Decide whether a record holds an oscillation, and return the evidence.
 
     The strongest line of a Hann-window periodogram (the strongest inside ``band_hz``
-    when a band is given) is fitted by the IEEE 1057 four-parameter fit, then three tests
-    must all pass: its power stands above the noise floor (>= ``min_snr_db``; noise
+    when a band is given) is located by the two-bin ratio of the Hann window and its
+    amplitude taken by the IEEE 1057 three-parameter fit at that frequency -- one FFT and
+    one linear fit, no iterations (the full IEEE 1241 harmonic fit is :func:`harmonics`,
+    for THD) -- then three tests must all pass: its power stands above the noise floor (>= ``min_snr_db``; noise
     variance from the periodogram median, so harmonics and spurs do not count as noise);
     its periodogram bin stands above the median bin (>= ``min_prominence_db``); its
     frequency lies inside ``band_hz``. Optionally the fitted Vpp must reach ``min_vpp_v``.
@@ -463,28 +512,32 @@ def detect_oscillation(
         return Detection(False, -math.inf, 0.0, math.nan, 0.0, band_hz is None,
                          f"record is flat at {arr[0]:.4g} V: no signal")
     band_cycles = None if band_hz is None else (lo / fs, hi / fs)
-    prominence, f_peak, noise_var = _prominence_db(arr, band_cycles)
+    pg = _periodogram(arr)
+    prominence, f_peak, noise_var = _prominence_db(arr, band_cycles, pg)
     if prominence == -math.inf:
-        prom_all, f_all, _ = _prominence_db(arr)
+        prom_all, f_all, _ = _prominence_db(arr, None, pg)
         return Detection(False, -math.inf, prom_all, f_all * fs, 0.0, False,
                          f"not oscillating: no spectral line inside the band {lo:g}..{hi:g} Hz; "
                          f"the strongest line is at {f_all * fs:.6g} Hz")
     try:
-        # fit the strongest line inside the band: an out-of-band spur (mains pick-up, a
-        # clock) must not hide an in-band oscillation
-        ana = _analyse(arr, fs, freq_hz=None, start_cycles=f_peak, n=5, full_scale_v=None)
+        # the strongest line inside the band, its amplitude by the three-parameter fit
+        # (IEEE 1057, 8.1) at the spectral frequency: an out-of-band spur (mains pick-up,
+        # a clock) must not hide an in-band oscillation
+        fit = _fit_from(arr, fs, 2.0 * math.pi * f_peak, fit_freq=False)
     except MeasurementError as exc:
         return Detection(False, -math.inf, prominence, f_peak * fs, 0.0, False,
                          f"no sine could be fitted: {exc.reason}")
-    freq = ana.fundamental_hz
-    vpp = 2.0 * ana.harmonic_v[0]
+    freq = f_peak * fs
+    vpp = fit.vpp_v
     # amplitude against the noise floor: the line's power over the median-implied noise
-    # variance (robust to harmonics and spurs); the IEEE 1241 residual SNR when the
+    # variance (robust to harmonics and spurs); the fit's residual SNR when the
     # periodogram median is zero (a record of a few ADC codes)
     if noise_var > 0.0:
-        snr = db10(0.5 * ana.harmonic_v[0] ** 2 / noise_var)
+        snr = db10(0.5 * fit.amplitude_v**2 / noise_var)
+    elif fit.residual_rms_v > 0.0:
+        snr = db20(fit.amplitude_v / math.sqrt(2.0) / fit.residual_rms_v)
     else:
-        snr = ana.snr_db
+        snr = math.inf
     in_band = True if band_hz is None else (lo <= freq <= hi)
     failures = []
     if snr < min_snr_db:
@@ -496,7 +549,7 @@ def detect_oscillation(
     if vpp < min_vpp_v:
         failures.append(f"Vpp {vpp:.4g} V < {min_vpp_v:g} V")
     if band_cycles is not None:
-        prom_all, f_all, _ = _prominence_db(arr)
+        prom_all, f_all, _ = _prominence_db(arr, None, pg)
         if prom_all > prominence + 3.0 and not lo <= f_all * fs <= hi:
             # a stronger line outside the band: is the in-band line one of its harmonics?
             k = round(freq / (f_all * fs)) if f_all > 0 else 0
