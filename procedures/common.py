@@ -22,12 +22,13 @@ Bench-side helpers (they take the step context ``ctx``):
 
 from __future__ import annotations
 
+import inspect
 import math
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any, Literal
 
-from benchctl.errors import MeasurementError, SafetyError
+from benchctl.errors import InstrumentError, InstrumentTimeout, MeasurementError, SafetyError
 
 # --------------------------------------------------------------------------------------
 # keys and grids
@@ -327,9 +328,22 @@ class Settling:
     tol_v: float = 0.005
     timeout_s: float = 2.0
     hold_s: float = 0.002
+    poll_s: float = 0.5e-3
+    """Pause between readbacks while waiting, s: bench supplies settle small steps in about
+    a millisecond (common practice, no published source), so a coarse poll would wait
+    several times longer than the supply does."""
 
 
 Branch = Literal["below", "above"]
+
+
+def _takes_poll(supply: Any) -> bool:
+    """Whether ``supply.wait_settled`` takes ``poll_s`` (a stand-in supply may not)."""
+    try:
+        params = inspect.signature(supply.wait_settled).parameters
+    except (TypeError, ValueError):
+        return False
+    return "poll_s" in params
 
 
 @dataclass
@@ -358,7 +372,18 @@ class RailTracker:
 
     def _settle(self, rail_v: float, hold_s: float | None = None) -> float:
         s = self.settling
-        got = self._supply.wait_settled(rail_v, tol_v=s.tol_v, timeout_s=s.timeout_s)
+        kw = {"poll_s": s.poll_s} if _takes_poll(self._supply) else {}
+        try:
+            got = self._supply.wait_settled(rail_v, tol_v=s.tol_v, timeout_s=s.timeout_s, **kw)
+        except InstrumentTimeout:
+            # a rail that never comes may be a tripped over-voltage protection: say so
+            tripped = getattr(self._supply, "protection_tripped", None)
+            if tripped is not None and tripped():
+                raise InstrumentError(
+                    0, f"over-voltage protection tripped while settling at {rail_v:g} V; "
+                    "the supply output is off",
+                    resource=getattr(self._supply, "resource", "")) from None
+            raise
         self.ctx.clock.sleep(s.hold_s if hold_s is None else hold_s)
         return float(got)
 

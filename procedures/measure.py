@@ -14,7 +14,7 @@ decision costs exactly one acquisition.
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import asdict, dataclass
 from typing import Any, Literal
 
@@ -103,10 +103,24 @@ def _detect(volts: np.ndarray, fs_hz: float, band_hz: tuple[float, float] | None
     return analysis.detect_oscillation(volts, **kw)
 
 
-def acquire_output(ctx: Any, *, timeout_s: float) -> Any:
-    """One acquisition; returns the output channel's Waveform."""
+def acquire_output(ctx: Any, *, timeout_s: float,
+                   meanwhile: Callable[[], None] | None = None) -> Any:
+    """One acquisition; returns the output channel's Waveform.
+
+    ``meanwhile`` runs after the scope is armed and before its completion is awaited:
+    work that does not need this record (supply readbacks, the analysis of the previous
+    record) overlaps the acquisition instead of following it.
+    """
     scope = ctx.bench.scope
-    scope.acquire(timeout_s=timeout_s)
+    arm, wait = getattr(scope, "arm", None), getattr(scope, "wait_complete", None)
+    if meanwhile is not None and arm is not None and wait is not None:
+        arm()
+        meanwhile()
+        wait(timeout_s=timeout_s)
+    else:  # a scope without split arm/wait: the work follows the acquisition
+        scope.acquire(timeout_s=timeout_s)
+        if meanwhile is not None:
+            meanwhile()
     return scope.fetch(ctx.bench.wiring.output_channel)
 
 
@@ -129,6 +143,23 @@ class ScopeMemory:
     setup: ScopeSetup | None = None
     autoscales: int = 0
     reused: int = 0
+    applied: ScopeSetup | None = None
+    channel: int | None = None
+
+    def apply(self, scope: Any, channel: int) -> None:
+        """Apply the remembered set-up unless it is what this memory last applied.
+
+        Only :func:`measure_output` touches the scope between points of a step, and every
+        other change of the scope (autoscale, the fallback) forgets what was applied, so
+        an unchanged set-up is not sent again.
+        """
+        assert self.setup is not None
+        if self.applied != self.setup or self.channel != channel:
+            self.setup.apply(scope, channel)
+            self.applied, self.channel = self.setup, channel
+
+    def forget_applied(self) -> None:
+        self.applied = None
 
 
 def _autoscale(scope: Any, channel: int, opts: MeasureOptions,
@@ -139,6 +170,8 @@ def _autoscale(scope: Any, channel: int, opts: MeasureOptions,
     record can drive its timebase out of the instrument's range (SCPI error -222, data out
     of range); both mean "nothing to scale on", and :data:`FALLBACK_SETUP` is applied.
     """
+    if memory is not None:
+        memory.forget_applied()
     kw: dict[str, Any] = {"cycles": opts.cycles, "timeout_s": opts.timeout_s}
     if opts.first_window_s is not None:
         kw["first_window_s"] = opts.first_window_s
@@ -162,23 +195,27 @@ def _autoscale(scope: Any, channel: int, opts: MeasureOptions,
     return True
 
 
-def _still_fits(wf: Any, setup: ScopeSetup, opts: MeasureOptions) -> str | None:
-    """"off", "fits" or None (autoscale needed) for a record taken with a remembered set-up."""
+def _still_fits(wf: Any, setup: ScopeSetup, opts: MeasureOptions) -> tuple[str | None, Any]:
+    """("off" | "fits" | None, detection) for a record taken with a remembered set-up.
+
+    None means autoscale is needed; the detection (None for a clipped record) is handed on
+    to :func:`analyse_records` so the record is not examined twice.
+    """
     if wf.clipped_samples > 0:
-        return None
+        return None, None
     y = np.asarray(wf.volts, dtype=float)
     det = _detect(y, _fs(wf), opts.band_hz)
     if not det.oscillating:
-        return "off"
+        return "off", det
     screen_v = 8.0 * setup.scale_v_div
     span = float(np.max(y) - np.min(y)) / screen_v
     freq = finite_or_none(det.freq_hz)
     if freq is None or not 0.4 <= span <= 0.95:
-        return None
+        return None, det
     cycles = freq * setup.window_s
     if not 0.8 * opts.cycles <= cycles <= 1.25 * opts.cycles or _fs(wf) < 8 * freq:
-        return None
-    return "fits"
+        return None, det
+    return "fits", det
 
 
 def measure_output(ctx: Any, opts: MeasureOptions, *, rail_set_v: float,
@@ -197,21 +234,37 @@ def measure_output(ctx: Any, opts: MeasureOptions, *, rail_set_v: float,
     scope = bench.scope
     rescales = 0
     waves: list[Any] = []
+    done: dict[int, tuple[float, ...]] = {}  # id(record) -> its estimates, made while waiting
+    first_det: Any = None
+    readings: dict[str, float | None] = {}
+
+    def meanwhile() -> None:
+        # supply readbacks during the first acquisition; then, during each later one, the
+        # estimates of the record before it (numpy releases the interpreter lock)
+        if not readings:
+            readings["rail_v"] = finite_or_none(bench.supply.measure_voltage())
+            readings["current_a"] = finite_or_none(bench.supply.measure_current())
+        elif waves and first_det is not None and first_det.oscillating:
+            last = waves[-1]
+            if id(last) not in done:
+                done[id(last)] = _record_estimates(last, opts)
+
     scaled, want = True, opts.records
     verdict = None
     if memory is not None and memory.setup is not None:
-        memory.setup.apply(scope, ch)
-        wf = acquire_output(ctx, timeout_s=opts.timeout_s)
-        verdict = _still_fits(wf, memory.setup, opts)
+        memory.apply(scope, ch)
+        wf = acquire_output(ctx, timeout_s=opts.timeout_s, meanwhile=meanwhile)
+        verdict, det = _still_fits(wf, memory.setup, opts)
         if verdict is not None:
             memory.reused += 1
             waves.append(wf)
+            first_det = det
             want = 1 if verdict == "off" else opts.records
     if verdict is None:
         scaled = _autoscale(scope, ch, opts, memory)
         want = opts.records if scaled else 1
     while len(waves) < want:
-        wf = acquire_output(ctx, timeout_s=opts.timeout_s)
+        wf = acquire_output(ctx, timeout_s=opts.timeout_s, meanwhile=meanwhile)
         if wf.clipped_samples > 0:
             if rescales >= opts.max_rescales:
                 raise MeasurementError(
@@ -219,24 +272,45 @@ def measure_output(ctx: Any, opts: MeasureOptions, *, rail_set_v: float,
                     f" after {rescales} re-autoscales")
             rescales += 1
             waves.clear()
+            first_det = None
             scaled = _autoscale(scope, ch, opts, memory)
             want = opts.records if scaled else 1
             continue
         waves.append(wf)
-    row = analyse_records(waves, opts)
+        if first_det is None:
+            first_det = _detect(np.asarray(wf.volts, dtype=float), _fs(wf), opts.band_hz)
+    row = analyse_records(waves, opts, detection=first_det,
+                          estimates=[done.get(id(w)) for w in waves])
     if not scaled:
         row["osc_evidence"] = "autoscale found no periodic signal; " + row["osc_evidence"]
-    row.update(rail_set_v=float(rail_set_v), rescales=rescales)
-    row["rail_v"] = finite_or_none(bench.supply.measure_voltage())
-    row["current_a"] = finite_or_none(bench.supply.measure_current())
+    row.update(rail_set_v=float(rail_set_v), rescales=rescales, **readings)
     return row
 
 
-def analyse_records(waves: list[Any], opts: MeasureOptions) -> dict[str, Any]:
-    """Estimates from K unclipped records (pure; the part of :func:`measure_output` after I/O)."""
+def _record_estimates(wf: Any, opts: MeasureOptions) -> tuple[float, ...]:
+    """(vpp, u_vpp, freq, u_freq, offset, thd_db or NaN) of one oscillating record."""
+    y = np.asarray(wf.volts, dtype=float)
+    amp = analysis.measure_amplitude(y, fs_hz=_fs(wf), clipped_samples=wf.clipped_samples,
+                                     method=opts.vpp_method)
+    try:
+        thd = analysis.harmonics(y, fs_hz=_fs(wf), freq_hz=amp.freq_hz).thd_db
+    except MeasurementError:
+        thd = math.nan
+    return (amp.vpp_v, amp.u_vpp_v, amp.freq_hz, amp.u_freq_hz, amp.offset_v, thd)
+
+
+def analyse_records(waves: list[Any], opts: MeasureOptions, *, detection: Any = None,
+                    estimates: list[tuple[float, ...] | None] | None = None) -> dict[str, Any]:
+    """Estimates from K unclipped records (pure; the part of :func:`measure_output` after I/O).
+
+    ``detection`` is the detector's result for ``waves[0]`` when the caller already has
+    it; ``estimates[i]`` those of record i already made (see :func:`_record_estimates`).
+    """
     first = waves[0]
     fs = _fs(first)
-    det = _detect(np.asarray(first.volts, dtype=float), fs, opts.band_hz)
+    det = detection
+    if det is None:
+        det = _detect(np.asarray(first.volts, dtype=float), fs, opts.band_hz)
     row: dict[str, Any] = {
         "oscillating": bool(det.oscillating),
         "osc_snr_db": finite_or_none(det.snr_db),
@@ -252,20 +326,11 @@ def analyse_records(waves: list[Any], opts: MeasureOptions) -> dict[str, Any]:
         row.update(vpp_v=finite_or_none(est.value), u_vpp_v=finite_or_none(est.u),
                    vpp_method="robust")
         return row
-    vpp, uvpp, freq, ufreq, thd, offs = [], [], [], [], [], []
-    for wf in waves:
-        y = np.asarray(wf.volts, dtype=float)
-        amp = analysis.measure_amplitude(y, fs_hz=_fs(wf), clipped_samples=wf.clipped_samples,
-                                         method=opts.vpp_method)
-        vpp.append(amp.vpp_v)
-        uvpp.append(amp.u_vpp_v)
-        freq.append(amp.freq_hz)
-        ufreq.append(amp.u_freq_hz)
-        offs.append(amp.offset_v)
-        try:
-            thd.append(analysis.harmonics(y, fs_hz=_fs(wf), freq_hz=amp.freq_hz).thd_db)
-        except MeasurementError:
-            pass
+    known = list(estimates) if estimates is not None else [None] * len(waves)
+    each = [e if e is not None else _record_estimates(wf, opts)
+            for wf, e in zip(waves, known, strict=True)]
+    vpp, uvpp, freq, ufreq, offs, thds = (list(col) for col in zip(*each, strict=True))
+    thd = [t for t in thds if not math.isnan(t)]
     row.update(
         vpp_v=float(np.mean(vpp)), u_vpp_v=_u_mean(vpp, uvpp),
         freq_hz=float(np.mean(freq)), u_freq_hz=_u_mean(freq, ufreq),
