@@ -1,0 +1,276 @@
+"""Runner benchmarks on the real-time simulated bench (ratios measured side by side in one run).
+
+1. A 100-point rail sweep: wall time / the simulated physical floor, where the floor is the
+   time the instruments themselves must take — every acquisition's modelled duration
+   (trigger wait + record window + re-arm) plus the supply's settling after each setpoint.
+   Target <= 1.15.
+2. Dropout located to 5 mV: acquisitions used by the bisection vs the budget
+   log2(range / resolution) + 4, with a uniform 5 mV sweep over the same range beside it.
+
+The simulated bench runs in a child process of its own (this script with ``--serve``),
+so its server threads do not share the interpreter lock with the runner being timed; the
+child accounts the instruments' busy time and reports it on request. The floor counts,
+per setpoint change, the time until the supply output is within the procedure's settling
+tolerance (``settle_tol_v``) -- what a procedure must wait -- and, per acquisition, trigger
+wait + record window + re-arm. The sweep runs with ``hold_s = 0`` (the simulated boards
+need no hold after the rail settles; a hold is a plain wait that neither side would
+count). The cost of the run folder's per-point fsync is measured beside the wall time and
+printed separately (the fsync policy belongs to the store).
+
+Run: ``.venv/bin/python benchmarks/bench_runner.py`` (or ``make bench``).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+from benchctl.drivers import load_bench_file, open_bench
+from benchctl.runner.engine import execute
+from benchctl.runner.plan import parse_plan
+from benchctl.simulated import SimulatedBench
+from benchctl.store import RunFolder
+
+LIMITS = """
+[board]
+name = "beacon"
+revision = "B"
+serial = "B0001"
+[limits]
+max_rail_v = 6.0
+current_limit_a = 0.05
+ovp_v = 6.5
+ramp_v_per_s = 1000.0
+"""
+
+
+class Busy:
+    """Accumulates the modelled time the simulated instruments are busy (model seconds).
+
+    Overlapping busy intervals (back-to-back ramp steps) count once.
+    """
+
+    def __init__(self, sim: SimulatedBench, *, tol_v: float = 0.005) -> None:
+        self.acquisition_s = 0.0
+        self.settle_s = 0.0
+        self.acquisitions = 0
+        self.changes = 0
+        self._settle_until = -math.inf
+        bm = sim.bench
+        finish, changed = bm._finish, bm.supply_changed
+
+        def on_finish() -> None:
+            a = bm.acq
+            if a is not None and a.t_complete is not None:
+                self.acquisition_s += a.t_complete - a.t_arm
+                self.acquisitions += 1
+            finish()
+
+        def on_changed() -> None:
+            t = bm.clock.now()
+            changed()
+            s = bm.supply
+            end = s.settled_at()
+            if end <= t:
+                return
+            grid = np.linspace(t, end, 2001)
+            out = np.flatnonzero(np.abs(s.output_v(grid) - s.target_v) > tol_v)
+            done = float(grid[min(out[-1] + 1, grid.size - 1)]) if out.size else t
+            start = max(t, self._settle_until)
+            if done > start:
+                self.settle_s += done - start
+                self.changes += 1
+            self._settle_until = max(self._settle_until, done)
+
+        bm._finish, bm.supply_changed = on_finish, on_changed
+
+    @property
+    def floor_s(self) -> float:
+        return self.acquisition_s + self.settle_s
+
+    def as_dict(self) -> dict:
+        return {"acquisition_s": self.acquisition_s, "settle_s": self.settle_s,
+                "acquisitions": self.acquisitions, "changes": self.changes}
+
+
+def serve() -> None:
+    """Child process: a real-time simulated bench; stdin lines "reset", "report", "quit"."""
+    with SimulatedBench(seed=1, realtime=True) as sim:
+        holder = {"busy": Busy(sim)}
+        for role, res in sim.resources.items():
+            print(f"{role} {res}", flush=True)
+        print("ready", flush=True)
+        for _ in range(1000):  # bounded: a benchmark sends a handful of lines
+            line = sys.stdin.readline().strip()
+            if line == "report":
+                print(json.dumps(holder["busy"].as_dict()), flush=True)
+            elif line == "reset":
+                holder["busy"] = Busy(sim)
+                print("ok", flush=True)
+            else:
+                break
+
+
+class ChildBench:
+    """The simulated bench served by a child process of this script."""
+
+    def __init__(self) -> None:
+        self.proc = subprocess.Popen([sys.executable, __file__, "--serve"], stdin=subprocess.PIPE,
+                                     stdout=subprocess.PIPE, text=True)
+        self.resources: dict[str, str] = {}
+        for _ in range(10):
+            line = self.proc.stdout.readline().strip()
+            if line == "ready" or not line:
+                break
+            role, res = line.split(" ", 1)
+            self.resources[role] = res
+        if set(self.resources) != {"supply", "generator", "scope"}:
+            self.close()
+            raise RuntimeError("the simulated bench child process did not start")
+
+    def ask(self, line: str) -> str:
+        self.proc.stdin.write(line + "\n")
+        self.proc.stdin.flush()
+        return self.proc.stdout.readline().strip()
+
+    def busy(self) -> dict:
+        return json.loads(self.ask("report"))
+
+    def write_bench(self, path: Path) -> Path:
+        lines = ["[bench]", 'name = "bench-child"', 'visa_library = "@py"', ""]
+        for role, res in self.resources.items():
+            lines += [f"[roles.{role}]", f'resource = "{res}"', 'dialect = "scpi1999"',
+                      "timeout_s = 5.0", ""]
+        lines += ["[wiring]", "output_channel = 1", "rail_channel = 2", 'generator = "rail"', ""]
+        path.write_text("\n".join(lines), encoding="utf-8")
+        return path
+
+    def close(self) -> None:
+        try:
+            self.proc.stdin.write("quit\n")
+            self.proc.stdin.flush()
+        except OSError:
+            pass
+        try:
+            self.proc.communicate(timeout=10)
+        except subprocess.TimeoutExpired:
+            self.proc.kill()
+            self.proc.communicate(timeout=5)
+
+    def __enter__(self) -> ChildBench:
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+
+class FsyncTimer:
+    """Times every os.fsync of this process while active (the store's per-point fsync)."""
+
+    def __init__(self) -> None:
+        self.total_s = 0.0
+        self.calls = 0
+        self._real = os.fsync
+
+    def __enter__(self) -> FsyncTimer:
+        real = self._real
+
+        def timed(fd: int) -> None:
+            t0 = time.perf_counter()
+            try:
+                real(fd)
+            finally:
+                self.total_s += time.perf_counter() - t0
+                self.calls += 1
+
+        os.fsync = timed
+        return self
+
+    def __exit__(self, *exc) -> None:
+        os.fsync = self._real
+
+
+def _run(sim: ChildBench, steps: str, tmp: Path, name: str) -> tuple[float, dict, dict, FsyncTimer]:
+    plan = parse_plan(LIMITS + steps, file=f"<{name}>")
+    bench_cfg = load_bench_file(sim.write_bench(tmp / f"{name}.toml"))
+    folder = RunFolder.create(tmp / name, plan_text=plan.text, bench_text="", meta={})
+    sim.ask("reset")
+    with FsyncTimer() as fs:
+        t0 = time.perf_counter()
+        out = execute(plan, open_bench=lambda: open_bench(bench_cfg, max_voltage_v=plan.limits.max_rail_v),
+                      folder=folder)
+        wall = time.perf_counter() - t0
+    assert out.exit_code in (0, 1), out.message
+    return wall, out.parameters, sim.busy(), fs
+
+
+def sweep_vs_floor(tmp: Path) -> None:
+    steps = """
+[[steps]]
+procedure = "rail_sweep"
+[steps.params]
+start_v = 3.05
+stop_v = 5.03
+step_v = 0.02
+down = false
+records = 1
+hold_s = 0.0
+"""
+    with ChildBench() as sim:
+        wall, _, busy, fs = _run(sim, steps, tmp, "sweep")
+    points = 100
+    floor = busy["acquisition_s"] + busy["settle_s"]
+    print(f"100-point sweep (hold_s = 0; bench in its own process): wall {wall:.3f} s, physical floor "
+          f"{floor:.3f} s ({busy['acquisitions']} acquisitions {busy['acquisition_s']:.3f} s + settling "
+          f"{busy['settle_s']:.3f} s)")
+    print(f"  ratio wall / floor = {wall / floor:.3f}   (target <= 1.15); "
+          f"overhead {1e3 * (wall - floor) / points:.2f} ms per point")
+    print(f"  of the wall, the run folder's fsync: {fs.total_s:.3f} s in {fs.calls} calls "
+          f"({1e3 * fs.total_s / points:.2f} ms per point); without it the ratio would be "
+          f"{(wall - fs.total_s) / floor:.3f}, overhead {1e3 * (wall - fs.total_s - floor) / points:.2f} ms "
+          "per point")
+
+
+def dropout_acquisitions(tmp: Path) -> None:
+    lo, hi, res = 2.0, 4.0, 0.005
+    budget = math.log2((hi - lo) / res) + 4
+    steps = f"""
+[[steps]]
+procedure = "dropout_startup"
+[steps.params]
+lo_v = {lo}
+hi_v = {hi}
+resolution_v = {res}
+search = "dropout"
+"""
+    truth = SimulatedBench(seed=1).truth.dropout_v
+    with ChildBench() as sim:
+        wall, params, busy, _ = _run(sim, steps, tmp, "dropout")
+    p = params["dropout_v"]
+    print(f"dropout by bisection: {busy['acquisitions']} acquisitions (budget log2({hi - lo:g}/{res:g}) + 4 = "
+          f"{budget:.1f}), wall {wall:.3f} s; dropout {p['value']:.4f} V in [{p['low']:.4f}, {p['high']:.4f}] "
+          f"(truth {truth:.4f} V)")
+    n_uniform = int(round((hi - lo) / res)) + 1
+    print(f"  a uniform {res * 1e3:g} mV sweep over the same range: {n_uniform} points, >= {n_uniform} acquisitions "
+          f"({n_uniform / busy['acquisitions']:.0f}x more)")
+
+
+def main() -> None:
+    if "--serve" in sys.argv[1:]:
+        serve()
+        return
+    with tempfile.TemporaryDirectory(prefix="benchctl-bench-") as tmp:
+        sweep_vs_floor(Path(tmp))
+        dropout_acquisitions(Path(tmp))
+
+
+if __name__ == "__main__":
+    main()
