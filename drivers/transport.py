@@ -157,6 +157,7 @@ class Transport:
         # through pyvisa, which owns the receive buffer.
         self._sock: socket.socket | None = sock if isinstance(sock, socket.socket) else None
         self._wterm = str(getattr(resource, "write_termination", "\n") or "")
+        self._rterm = str(getattr(resource, "read_termination", "\n") or "\n").encode("ascii")
         self._encoding = str(getattr(resource, "encoding", "ascii") or "ascii")
         self.nodelay = _set_nodelay(self._session)
         if self._session is not None and hasattr(self._session, "max_recv_size"):
@@ -218,7 +219,7 @@ class Transport:
             t0 = time.perf_counter()
             try:
                 self._send(message)
-                reply = self._res.read()  # pyvisa: read to the terminator, strip it
+                reply = self._read_line(message)
             except (VisaIOError, OSError, UnicodeError) as exc:
                 err = self._convert(exc, message)
                 if isinstance(err, InstrumentTimeout) and attempt < retries:
@@ -238,6 +239,39 @@ class Transport:
                     1e3 * (time.perf_counter() - t0),
                 )
             return reply
+
+    def _read_line(self, message: str) -> str:
+        """Read one reply up to the read termination and return it without it.
+
+        Through the session's socket when it can be reached (taking what pyvisa-py already
+        buffered first; anything after the terminator stays buffered for the next read),
+        otherwise through pyvisa. A peer that closes the connection is ConnectionLost at
+        once, not after the timeout.
+        """
+        path = self._socket_path()
+        if path is None:
+            return self._res.read()
+        sock, pending = path
+        term = self._rterm
+        deadline = time.monotonic() + self._timeout_s
+        start = 0
+        while True:
+            cut = pending.find(term, start)
+            if cut >= 0:
+                line = bytes(pending[:cut])
+                del pending[: cut + len(term)]
+                return line.decode(self._encoding)
+            start = max(len(pending) - len(term) + 1, 0)
+            remaining_s = deadline - time.monotonic()
+            if remaining_s <= 0:
+                pending.clear()  # a partial reply is useless; a late rest is drained later
+                raise VisaIOError(constants.StatusCode.error_timeout)
+            ready, _, _ = select.select([sock], [], [], remaining_s)
+            if ready:
+                chunk = sock.recv(TEXT_CHUNK_BYTES)
+                if not chunk:
+                    raise ConnectionResetError("connection closed by the instrument")
+                pending += chunk
 
     def _send(self, message: str) -> None:
         if self._sock is not None:

@@ -127,11 +127,11 @@ def test_stalled_instrument_is_a_timeout_within_the_timeout() -> None:
 
 
 def test_dropped_connection_is_connection_lost() -> None:
-    with ScriptServer(lambda line, i: "close") as server, open_resource(server.resource, timeout_s=0.4) as tr:
+    with ScriptServer(lambda line, i: "close") as server, open_resource(server.resource, timeout_s=3.0) as tr:
         t0 = time.monotonic()
         with pytest.raises(ConnectionLost):
             tr.query("*IDN?")
-        assert time.monotonic() - t0 < 2.0
+        assert time.monotonic() - t0 < 1.5  # seen when the peer closes, not at the timeout
         with pytest.raises(ConnectionLost):  # the socket stays dead: keep saying so
             for _ in range(3):
                 tr.write("*CLS")
