@@ -299,3 +299,18 @@ def test_text_then_block_in_one_reply() -> None:
         with pytest.raises(ProtocolError, match="expected '<text>;<block>'"):
             tr.read_block("TRACe:DATA? CH1", prefix=expected)
         assert tr.query("*IDN?").startswith("Testworks")  # drained, in step again
+
+
+def test_everything_works_through_plain_pyvisa_too(monkeypatch: pytest.MonkeyPatch) -> None:
+    # The socket fast paths rely on pyvisa-py internals; without them every exchange goes
+    # through pyvisa's own API and must give the same answers and the same typed errors.
+    payload = (np.arange(30_000, dtype=">i2") * 3).tobytes()
+    with _block_server(payload) as server, open_resource(server.resource, timeout_s=0.5) as tr:
+        monkeypatch.setattr(tr, "_socket_path", lambda: None)
+        monkeypatch.setattr(tr, "_sock", None)
+        assert tr.query("*IDN?") == "Testworks,SCRIPT,0001,1.0"
+        assert bytes(tr.read_block("TRACe:DATA? CH1", expected_bytes=len(payload))) == payload
+        assert tr._res.get_visa_attribute(constants.ResourceAttribute.termchar_enabled)
+        with pytest.raises(InstrumentTimeout):
+            tr.query("MEASure:VOLTage?")  # the script does not answer it
+        assert tr.query("*IDN?").startswith("Testworks")
