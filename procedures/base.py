@@ -149,6 +149,31 @@ class Procedure:
     def run(self, ctx: StepContext, params: Mapping[str, Any]) -> list[Result]:  # pragma: no cover
         raise NotImplementedError
 
+    @classmethod
+    def check(cls, params: Mapping[str, Any], *, earlier: Sequence[tuple[str, str]],
+              wiring: Any = None) -> list[tuple[str, str]]:
+        """Problems the plan validator can see before any instrument is opened.
+
+        ``params`` are the step's parameters (types and bounds already checked),
+        ``earlier`` the (step name, procedure name) of the steps before it, ``wiring`` the
+        bench file's wiring (None when the bench file is not known). Returns
+        ``(parameter or key, reason)`` pairs; the key "wiring.<name>" names the bench file.
+        """
+        return []
+
+
+def earlier_names(earlier: Sequence[tuple[str, str]]) -> set[str]:
+    """Step names and procedure names of the earlier steps (what ``ctx.earlier`` accepts)."""
+    return {n for pair in earlier for n in pair}
+
+
+def order_problem(params: Mapping[str, Any], lo: str, hi: str) -> list[tuple[str, str]]:
+    """``hi`` must be above ``lo`` when both are given."""
+    a, b = params.get(lo), params.get(hi)
+    if a is not None and b is not None and not float(b) > float(a):
+        return [(hi, f"{hi}={b!r} must be above {lo}={a!r}")]
+    return []
+
 
 REGISTRY: dict[str, type[Procedure]] = {}
 

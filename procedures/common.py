@@ -360,6 +360,12 @@ class RailTracker:
     settling: Settling = field(default_factory=Settling)
     branch: str | None = None
     rail_v: float | None = None
+    _set_v: float | None = None  # the setpoint this tracker last sent, V
+    _set_at_s: float = -math.inf  # when, on ctx.clock, s
+
+    SMALL_STEP_V = 0.1
+    """A move no larger than this is one setpoint step (the size of the supply driver's ramp
+    steps), sent directly once the ramp rate allows it."""
 
     # -- primitives ------------------------------------------------------------------
     @property
@@ -368,7 +374,24 @@ class RailTracker:
 
     def _ramp(self, rail_v: float) -> None:
         check_rail(self.ctx, rail_v)
-        self._supply.ramp_to(rail_v, rate_v_per_s=self.ctx.limits.ramp_v_per_s)
+        rate = self.ctx.limits.ramp_v_per_s
+        last = self._set_v
+        if last is not None and last == self.rail_v and abs(rail_v - last) <= self.SMALL_STEP_V:
+            # one step from the setpoint we sent: no need to read the setpoint back first;
+            # the step waits until the ramp rate allows it (as the driver's ramp does), and
+            # the settling wait that follows drains the error queue
+            clock = self.ctx.clock
+            wait_s = abs(rail_v - last) / rate - (clock.monotonic() - self._set_at_s)
+            if wait_s > 0:
+                clock.sleep(wait_s)
+            self._set(rail_v)
+            return
+        self._supply.ramp_to(rail_v, rate_v_per_s=rate)
+        self._set_v, self._set_at_s = rail_v, self.ctx.clock.monotonic()
+
+    def _set(self, rail_v: float) -> None:
+        self._supply.set_voltage(rail_v)
+        self._set_v, self._set_at_s = rail_v, self.ctx.clock.monotonic()
 
     def _settle(self, rail_v: float, hold_s: float | None = None) -> float:
         s = self.settling
@@ -391,14 +414,16 @@ class RailTracker:
         """Output off; the board is in a known (unpowered) state."""
         self._supply.output(False)
         self.branch, self.rail_v = "off", None
+        self._set_v = None  # whoever powers up next may program the supply directly
 
     def power_cycle_at(self, rail_v: float, *, off_s: float = 0.0) -> float:
         """Output off, setpoint ``rail_v``, output on, settle; returns the rail readback, V."""
         check_rail(self.ctx, rail_v)
         self._supply.output(False)
+        self._set_v = None
         if off_s > 0:
             self.ctx.clock.sleep(off_s)
-        self._supply.set_voltage(rail_v)
+        self._set(rail_v)
         self._supply.output(True)
         got = self._settle(rail_v)
         self.branch, self.rail_v = "below", rail_v

@@ -13,7 +13,7 @@ from typing import Any
 
 from benchctl import analysis
 from benchctl.errors import ConfigError
-from benchctl.procedures.base import Param, Procedure, Result, register
+from benchctl.procedures.base import Param, Procedure, Result, order_problem, register
 from benchctl.procedures.common import RailTracker, check_rail, rail_grid
 from benchctl.procedures.measure import ScopeMemory
 from benchctl.procedures.rail_sweep import (
@@ -101,6 +101,10 @@ class LinearRegion(Procedure):
     columns = SWEEP_COLUMNS
     results = ("supply_sensitivity_vpp_per_v", "linear_lo_v", "linear_hi_v", "linear_span_v",
                "linearity_max_dev_v", "linearity_r2")
+
+    @classmethod
+    def check(cls, params, *, earlier, wiring=None):
+        return order_problem(params, "start_v", "stop_v")
 
     def run(self, ctx: Any, params: Mapping[str, Any]) -> list[Result]:
         start_v, stop_v = float(params["start_v"]), float(params["stop_v"])

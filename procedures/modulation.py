@@ -23,7 +23,14 @@ import numpy as np
 
 from benchctl import analysis
 from benchctl.errors import ConfigError, MeasurementError
-from benchctl.procedures.base import Column, Param, Procedure, Result, register
+from benchctl.procedures.base import (
+    Column,
+    Param,
+    Procedure,
+    Result,
+    earlier_names,
+    register,
+)
 from benchctl.procedures.common import RailTracker, check_rail, finite_or_none, point_key
 from benchctl.procedures.measure import (
     OUTPUT_COLUMNS,
@@ -68,6 +75,22 @@ class Modulation(Procedure):
     )
     columns = MOD_COLUMNS
     results = ("modulation_ratio", "max_clean_depth_vpp", "envelope_thd_db")
+
+    @classmethod
+    def check(cls, params, *, earlier, wiring=None):
+        out = []
+        if params["centre_v"] is None and params["source"] not in earlier_names(earlier):
+            out.append(("source", f"no earlier step {params['source']!r} to take the linear region's "
+                                  "centre from; give centre_v or an earlier step's name"))
+        if params["centre_v"] is not None:
+            for d in params["depths_vpp"]:
+                if params["centre_v"] - d / 2 < 0:
+                    out.append(("depths_vpp", f"depth {d:g} Vpp swings the rail below 0 V"))
+                    break
+        if wiring is not None and getattr(wiring, "generator", "rail") != "rail":
+            out.append(("wiring.generator", f"modulation needs the generator summed onto the rail, "
+                                            f"got {wiring.generator!r}"))
+        return out
 
     def _centre(self, ctx: Any, params: Mapping[str, Any]) -> float:
         if params["centre_v"] is not None:

@@ -16,7 +16,15 @@ from typing import Any
 
 from benchctl import analysis
 from benchctl.errors import ConfigError, MeasurementError
-from benchctl.procedures.base import Column, Param, Procedure, Result, register
+from benchctl.procedures.base import (
+    Column,
+    Param,
+    Procedure,
+    Result,
+    earlier_names,
+    order_problem,
+    register,
+)
 from benchctl.procedures.common import RailTracker, check_rail, point_key, rail_grid
 from benchctl.procedures.measure import ScopeMemory
 from benchctl.procedures.rail_sweep import (
@@ -106,6 +114,13 @@ class Pushing(Procedure):
     )
     columns = PUSHING_COLUMNS
     results = ("pushing_hz_per_v", "current_slope_a_per_v", "current_at_nominal_a")
+
+    @classmethod
+    def check(cls, params, *, earlier, wiring=None):
+        out = order_problem(params, "start_v", "stop_v") + order_problem(params, "fit_lo_v", "fit_hi_v")
+        if params["source"] and params["source"] not in earlier_names(earlier):
+            out.append(("source", f"no earlier step {params['source']!r} to take the points from"))
+        return out
 
     def run(self, ctx: Any, params: Mapping[str, Any]) -> list[Result]:
         found = _find_source(ctx, params["source"])

@@ -18,7 +18,14 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 from benchctl.errors import ConfigError
-from benchctl.procedures.base import Column, Param, Procedure, Result, register
+from benchctl.procedures.base import (
+    Column,
+    Param,
+    Procedure,
+    Result,
+    order_problem,
+    register,
+)
 from benchctl.procedures.common import (
     RailTracker,
     Settling,
@@ -236,6 +243,10 @@ class RailSweep(Procedure):
     )
     columns = SWEEP_COLUMNS
     results = ("dropout_v", "startup_v", "vpp_at_nominal_v", "current_at_nominal_a")
+
+    @classmethod
+    def check(cls, params, *, earlier, wiring=None):
+        return order_problem(params, "start_v", "stop_v")
 
     def run(self, ctx: Any, params: Mapping[str, Any]) -> list[Result]:
         start_v, stop_v = float(params["start_v"]), float(params["stop_v"])

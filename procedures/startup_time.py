@@ -20,7 +20,13 @@ import numpy as np
 
 from benchctl import analysis
 from benchctl.errors import ConfigError, MeasurementError
-from benchctl.procedures.base import Column, Param, Procedure, Result, register
+from benchctl.procedures.base import (
+    Column,
+    Param,
+    Procedure,
+    Result,
+    register,
+)
 from benchctl.procedures.common import RailTracker, check_rail, finite_or_none, point_key
 from benchctl.procedures.measure import OUTPUT_COLUMNS, measure_output
 from benchctl.procedures.rail_sweep import MEASURE_PARAMS, measure_options, settling
@@ -104,6 +110,13 @@ class StartupTime(Procedure):
     )
     columns = STARTUP_COLUMNS
     results = ("startup_time_s",)
+
+    @classmethod
+    def check(cls, params, *, earlier, wiring=None):
+        if wiring is not None and int(getattr(wiring, "rail_channel", 0) or 0) <= 0:
+            return [("wiring.rail_channel", "start-up time needs a scope channel on the rail "
+                                            "(rail_channel > 0)")]
+        return []
 
     def run(self, ctx: Any, params: Mapping[str, Any]) -> list[Result]:
         rail = float(params["rail_v"])

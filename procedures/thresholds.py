@@ -19,7 +19,15 @@ from collections.abc import Mapping
 from typing import Any
 
 from benchctl.errors import ConfigError
-from benchctl.procedures.base import Column, Param, Procedure, Result, register
+from benchctl.procedures.base import (
+    Column,
+    Param,
+    Procedure,
+    Result,
+    earlier_names,
+    order_problem,
+    register,
+)
 from benchctl.procedures.common import (
     RailTracker,
     ThresholdSearch,
@@ -129,6 +137,15 @@ class DropoutStartup(Procedure):
     )
     columns = THRESHOLD_COLUMNS
     results = ("dropout_v", "startup_v", "hysteresis_v")
+
+    @classmethod
+    def check(cls, params, *, earlier, wiring=None):
+        out = order_problem(params, "lo_v", "hi_v")
+        if (params["lo_v"] is None or params["hi_v"] is None) and (
+                not params["source"] or params["source"] not in earlier_names(earlier)):
+            out.append(("lo_v", f"give lo_v and hi_v, or name an earlier sweep in source "
+                                f"(no earlier step {params['source']!r})"))
+        return out
 
     def _ranges(self, ctx: Any, params: Mapping[str, Any]) -> dict[str, tuple[float, float]]:
         out = {}

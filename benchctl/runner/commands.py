@@ -101,15 +101,16 @@ def _validate(plan_src: tuple[str, str], bench_path: Path) -> tuple[Plan, Any]:
     errors: list[ConfigError] = []
     plan = bench = None
     try:
-        plan = parse_plan(plan_src[1], file=plan_src[0])
-    except ConfigErrors as exc:
-        errors.extend(exc.errors)
-    try:
         bench = load_bench_file(bench_path)
     except ConfigErrors as exc:
         errors.extend(exc.errors)
     except ConfigError as exc:
         errors.append(exc)
+    try:
+        plan = parse_plan(plan_src[1], file=plan_src[0], wiring=getattr(bench, "wiring", None),
+                          bench_file=str(bench_path))
+    except ConfigErrors as exc:
+        errors.extend(exc.errors)
     if errors:
         raise ConfigErrors(errors)
     return plan, bench

@@ -76,12 +76,16 @@ def load_plan(path: str | Path) -> Plan:
     return parse_plan(text, file=str(path))
 
 
-def parse_plan(text: str, *, file: str = "<plan>") -> Plan:
-    """Validate plan TOML text; raise ConfigErrors listing every problem."""
+def parse_plan(text: str, *, file: str = "<plan>", wiring: Any = None, bench_file: str = "bench") -> Plan:
+    """Validate plan TOML text; raise ConfigErrors listing every problem.
+
+    With the bench file's ``wiring`` (and its name ``bench_file``), the steps' needs of the
+    wiring are checked too (a modulation step needs the generator on the rail, ...).
+    """
     errors: list[ConfigError] = []
 
-    def err(key: str, reason: str) -> None:
-        errors.append(ConfigError(file, key, reason))
+    def err(key: str, reason: str, where: str = file) -> None:
+        errors.append(ConfigError(where, key, reason))
 
     try:
         doc = tomllib.loads(text)
@@ -96,7 +100,7 @@ def parse_plan(text: str, *, file: str = "<plan>") -> Plan:
     limits = _limits(doc.get("limits"), err)
     raw_limits = doc.get("limits")
     max_rail_v = _number(raw_limits.get("max_rail_v")) if isinstance(raw_limits, dict) else None
-    steps = _steps(doc.get("steps"), max_rail_v, err)
+    steps = _steps(doc.get("steps"), max_rail_v, err, wiring, bench_file)
     if errors:
         raise ConfigErrors(errors)
     assert board is not None and limits is not None
@@ -171,7 +175,7 @@ def _limits(section: Any, err) -> base.Limits | None:
     return base.Limits(max_rail_v, got["current_limit_a"], ovp_value, ramp_value)
 
 
-def _steps(section: Any, max_rail_v: float | None, err) -> list[Step]:
+def _steps(section: Any, max_rail_v: float | None, err, wiring: Any = None, bench_file: str = "bench") -> list[Step]:
     if section is None:
         err("steps", "missing: a plan needs at least one [[steps]] entry")
         return []
@@ -181,6 +185,7 @@ def _steps(section: Any, max_rail_v: float | None, err) -> list[Step]:
     base.load_builtin()
     steps: list[Step] = []
     seen: set[str] = set()
+    earlier: list[tuple[str, str]] = []
     for i, raw in enumerate(section):
         where = f"steps[{i}]"
         if not isinstance(raw, dict):
@@ -206,8 +211,16 @@ def _steps(section: Any, max_rail_v: float | None, err) -> list[Step]:
         seen.add(step_name)
         params = _params(proc, raw.get("params", {}), f"{where}.params", max_rail_v, err)
         spec = _spec(proc, raw.get("spec", {}), f"{where}.spec", err)
+        if params is not None:
+            for key, reason in proc.check(params, earlier=tuple(earlier), wiring=wiring):
+                if key.startswith("wiring."):
+                    err(key, f"step {step_name!r}: {reason}", bench_file)
+                else:
+                    err(f"{where}.params.{key}", reason)
+        earlier.append((step_name, name_of))
         if params is not None and spec is not None:
             steps.append(Step(i, step_name, name_of, params, spec))
+
     return steps
 
 
