@@ -213,16 +213,25 @@ def _summarise(console: Console, run_dir: Path, outcome: Outcome, report: Path |
 def parameters_table(params: Mapping[str, Mapping[str, Any]]) -> Table:
     """Derived parameters for the terminal; methods and notes are in the report and JSON."""
     table = Table(title="Derived parameters")
-    for col in ("parameter", "value", "u (1 sigma)", "unit", "spec", "verdict"):
-        table.add_column(col, justify="right" if col in ("value", "u (1 sigma)") else "left",
-                         no_wrap=col == "parameter")
+    table.add_column("parameter", no_wrap=True)
+    table.add_column("value ± u", justify="right", min_width=12)
+    table.add_column("unit")
+    table.add_column("spec")
+    table.add_column("verdict")
     for name, p in params.items():
-        spec = p.get("spec") or {}
-        spec_text = " ".join(f"{k} {v:g}" for k, v in spec.items() if v is not None)
         value = _fmt(p.get("value"), 6) if p.get("value") is not None else "n/a"
-        table.add_row(name, value, _fmt(p.get("uncertainty"), 2), str(p.get("unit") or ""), spec_text,
-                      str(p.get("verdict") or ""))
+        if p.get("uncertainty"):
+            value += f" ± {_fmt(p['uncertainty'], 2)}"
+        spec_text = _spec_text(p.get("spec") or {})
+        table.add_row(name, value, str(p.get("unit") or ""), spec_text, str(p.get("verdict") or ""))
     return table
+
+
+def _spec_text(spec: Mapping[str, Any]) -> str:
+    lo, hi = spec.get("min"), spec.get("max")
+    if lo is not None and hi is not None:
+        return f"{lo:g}..{hi:g}"
+    return f">= {lo:g}" if lo is not None else f"<= {hi:g}" if hi is not None else ""
 
 
 def _fmt(value: Any, digits: int = 6) -> str:
