@@ -22,6 +22,7 @@ Run: ``.venv/bin/python benchmarks/bench_runner.py`` (or ``make bench``).
 
 from __future__ import annotations
 
+import csv
 import json
 import math
 import os
@@ -37,6 +38,7 @@ from benchctl.drivers import load_bench_file, open_bench
 from benchctl.runner.engine import execute
 from benchctl.runner.plan import parse_plan
 from benchctl.simulated import SimulatedBench
+from benchctl.simulated.physics import BenchPhysics
 from benchctl.store import RunFolder
 
 LIMITS = """
@@ -228,6 +230,10 @@ hold_s = 0.0
         wall, _, busy, fs = _run(sim, steps, tmp, "sweep")
     points = 100
     floor = busy["acquisition_s"] + busy["settle_s"]
+    ph = BenchPhysics()
+    print(f"instrument numbers (simulated/physics.py): scope re-arm {ph.rearm_s * 1e3:g} ms per "
+          f"acquisition, supply slew {ph.slew_v_per_s / 1e3:g} V/ms, settling tau "
+          f"{ph.settle_tau_s * 1e6:g} us")
     print(f"100-point sweep (hold_s = 0; bench in its own process): wall {wall:.3f} s, physical floor "
           f"{floor:.3f} s ({busy['acquisitions']} acquisitions {busy['acquisition_s']:.3f} s + settling "
           f"{busy['settle_s']:.3f} s)")
@@ -255,12 +261,21 @@ search = "dropout"
     with ChildBench() as sim:
         wall, params, busy, _ = _run(sim, steps, tmp, "dropout")
     p = params["dropout_v"]
-    print(f"dropout by bisection: {busy['acquisitions']} acquisitions (budget log2({hi - lo:g}/{res:g}) + 4 = "
-          f"{budget:.1f}), wall {wall:.3f} s; dropout {p['value']:.4f} V in [{p['low']:.4f}, {p['high']:.4f}] "
+    # every decision row of the step's table is one acquisition; the rest of what the scope
+    # did went to the "setup" point (autoscale and K records at the running rail), which
+    # is not part of the bisection's budget
+    decisions = 0
+    for table in sorted((tmp / "dropout" / "points").glob("*.csv")):
+        with table.open(newline="", encoding="utf-8") as fh:
+            decisions += sum(1 for row in csv.DictReader(fh) if row.get("label") != "setup")
+    total = busy["acquisitions"]
+    print(f"dropout by bisection: {decisions} acquisitions for the decisions (budget log2({hi - lo:g}/{res:g}) "
+          f"+ 4 = {budget:.1f}) + {total - decisions} for the scope set-up at the running rail = {total}, "
+          f"wall {wall:.3f} s; dropout {p['value']:.4f} V in [{p['low']:.4f}, {p['high']:.4f}] "
           f"(truth {truth:.4f} V)")
     n_uniform = int(round((hi - lo) / res)) + 1
     print(f"  a uniform {res * 1e3:g} mV sweep over the same range: {n_uniform} points, >= {n_uniform} acquisitions "
-          f"({n_uniform / busy['acquisitions']:.0f}x more)")
+          f"({n_uniform / total:.0f}x more than all {total})")
 
 
 def main() -> None:

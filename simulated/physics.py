@@ -323,6 +323,7 @@ class Acquisition:
     t_trigger: float | None = None
     t_complete: float | None = None
     ref: tuple[float, float, float] | None = None  # (t_ref, carrier phase, generator phase)
+    early: tuple | None = None  # (stamp, record, undo) of a record made before completion
 
 
 @dataclass
@@ -417,16 +418,21 @@ class BenchModel:
         grid = np.unique(np.asarray(pieces))
         rail = self.slow_rail_v(grid)
         state = self._history[-1].on
-        for i in range(len(grid)):
-            r = rail[i]
-            if not state and r >= osc.startup_v:
-                tc = _cross_time(grid, rail, i, osc.startup_v)
-                self._history.append(_Transition(tc, True, self._grow_rail(tc)))
-                state = True
-            elif state and r < osc.dropout_v:
+        i = 0
+        for _ in range(len(grid)):  # bounded: each pass finds one transition or stops
+            # the first sample past the threshold of the present state (vectorised)
+            hits = np.flatnonzero(rail[i:] < osc.dropout_v if state else rail[i:] >= osc.startup_v)
+            if hits.size == 0:
+                break
+            i += int(hits[0])
+            if state:
                 tc = _cross_time(grid, rail, i, osc.dropout_v)
                 self._history.append(_Transition(tc, False, 0.0))
-                state = False
+            else:
+                tc = _cross_time(grid, rail, i, osc.startup_v)
+                self._history.append(_Transition(tc, True, self._grow_rail(tc)))
+            state = not state
+            i += 1
         self._evolved_s = t_to
 
     def _grow_rail(self, t: float) -> float:
@@ -625,6 +631,9 @@ class BenchModel:
                 return False
             if a.t_complete is not None:
                 delay = self.clock.wall_delay_until(a.t_complete)
+                if delay > 0 and a.early is None:
+                    self._synthesise_early(a)
+                    delay = self.clock.wall_delay_until(a.t_complete)
                 if delay <= 0:
                     self.clock.advance_to(a.t_complete)
                     self._finish()
@@ -653,11 +662,36 @@ class BenchModel:
                 self._finish()
         return self.record
 
+    def _stamp(self) -> tuple:
+        """Everything a record depends on besides the acquisition itself."""
+        seg = self.supply.segments
+        return (self.fingerprint(), len(seg), seg[-1])
+
+    def _synthesise_early(self, a: Acquisition) -> None:
+        """Real time: make the record as soon as its time span is known (at the trigger).
+
+        The record's samples follow from the settings and the supply trajectory, all known
+        once the acquisition has triggered, so the synthesis overlaps the modelled wait
+        instead of following it. If anything changes before completion (a command during
+        the acquisition), the record is made again at completion from the same random
+        state, so the result does not depend on when it was made.
+        """
+        undo = (a.rng.bit_generator.state, a.t_trigger, a.ref, self._record_serial)
+        stamp = self._stamp()
+        a.early = (stamp, self._synthesise(a), undo)
+
     def _finish(self) -> None:
         a = self.acq
         if a is None:
             return
-        self.record = self._synthesise(a)
+        if a.early is not None and a.early[0] == self._stamp():
+            self.record = a.early[1]
+        else:
+            if a.early is not None:  # stale: start again from the same state
+                state, a.t_trigger, a.ref, self._record_serial = a.early[2]
+                a.rng.bit_generator.state = state
+            self.record = self._synthesise(a)
+        a.early = None
         self.acq = None
         if self.scope.continuous:
             self.arm()
