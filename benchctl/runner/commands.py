@@ -31,6 +31,8 @@ DEMO_PLAN = "demo_plan.toml"
 
 
 def add_command(subparsers: argparse._SubParsersAction) -> None:
+    from benchctl.cli import CAUTIONS
+
     run = subparsers.add_parser(
         "run",
         help="run a plan on a bench, unattended, into a run folder",
@@ -39,6 +41,8 @@ def add_command(subparsers: argparse._SubParsersAction) -> None:
         "Exit codes: 0 all spec limits pass, 1 a spec limit failed, 2 bad input, 3 instrument "
         "fault or abort. On every exit the bench is left in its safe state (generator off, supply "
         "ramped down and off).",
+        epilog=CAUTIONS,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     run.add_argument("plan", nargs="?", help="plan file (TOML); with --resume, defaults to the folder's copy")
     run.add_argument("--bench", help="bench file (TOML); with --resume, defaults to the folder's copy")
@@ -52,6 +56,8 @@ def add_command(subparsers: argparse._SubParsersAction) -> None:
         help="run the demo plan on the simulated bench (no hardware needed)",
         description="Start the simulated bench in this process, run the demo plan (all six "
         "procedures on an invented demo board) into a run folder and write its report.",
+        epilog=CAUTIONS,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     demo.add_argument("--out", default="runs/demo", help="run folder (default: runs/demo)")
     demo.add_argument("--replace", action="store_true", help="replace OUT if it holds an earlier run")
