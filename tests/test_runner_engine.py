@@ -114,7 +114,7 @@ class _Counter(base.Procedure):
     name = "test_counter"
     summary = "test-only"
     params = (base.Param("n", int, default=4), base.Param("fail_at", int, default=-1),
-              base.Param("fault", str, default="timeout", choices=("timeout", "abort")))
+              base.Param("fault", str, default="timeout", choices=("timeout", "abort", "bug")))
     columns = (base.Column("rail_v", "V"), base.Column("value", ""))
     results = ("total",)
 
@@ -126,6 +126,8 @@ class _Counter(base.Procedure):
                 if i == params["fail_at"]:
                     if params["fault"] == "abort":
                         raise KeyboardInterrupt
+                    if params["fault"] == "bug":
+                        raise ZeroDivisionError("a bug in a procedure")
                     raise InstrumentTimeout("no reply", command="MEAS:VOLT?", timeout_s=0.1)
                 MEASURED.append(f"{ctx.step_name}-{i}")
                 return {"rail_v": 1.0 + i, "value": 0.1 * i + 1e-17}
@@ -279,3 +281,14 @@ def test_one_instrument_named_for_two_roles_is_bad_input_and_nothing_is_enabled(
     out = execute(plan, open_bench=lambda: bench, folder=_folder(tmp_path, plan))
     assert out.exit_code == 2 and "two roles" in out.message
     assert ("supply", "output", True) not in bench.calls and out.safe_state.verified
+
+
+def test_a_bug_in_a_procedure_still_ends_in_safe_state_with_data_kept(tmp_path):
+    plan = _plan(n=4, fail_at=2, fault="bug")
+    bench = FakeBench()
+    folder = _folder(tmp_path, plan)
+    out = execute(plan, open_bench=lambda: bench, folder=folder)
+    assert out.exit_code == EXIT_FAULT and "internal error (ZeroDivisionError)" in out.message
+    assert out.safe_state.verified and not bench.supply.on
+    reopened = RunFolder.open(folder.path)
+    assert len(reopened.points(0, "test_counter")) == 2 and reopened.meta["status"] == "failed"

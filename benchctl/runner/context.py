@@ -37,6 +37,7 @@ class AbortFlag:
     def __init__(self) -> None:
         self._event = threading.Event()
         self.reason = ""
+        self.shielded = False  # True while the safe state runs: signals are then only logged
 
     def set(self, reason: str) -> None:
         self.reason = self.reason or reason

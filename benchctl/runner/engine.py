@@ -72,7 +72,8 @@ def now_iso() -> str:
 
 @contextmanager
 def abort_on_signals(flag: AbortFlag) -> Iterator[None]:
-    """First SIGINT/SIGTERM asks the run to stop at the next point; a second SIGINT interrupts."""
+    """First SIGINT/SIGTERM asks the run to stop at the next point; a second SIGINT interrupts
+    the point in progress. Neither interrupts the safe-state sequence."""
     if threading.current_thread() is not threading.main_thread():
         yield
         return
@@ -80,6 +81,9 @@ def abort_on_signals(flag: AbortFlag) -> Iterator[None]:
 
     def handler(signum: int, _frame: Any) -> None:
         name = signal.Signals(signum).name
+        if flag.shielded:
+            log.warning("%s received while making the bench safe: finishing that first", name)
+            return
         if flag.is_set() and signum == signal.SIGINT:
             raise KeyboardInterrupt
         flag.set(f"{name} received")
@@ -140,7 +144,12 @@ def execute(
             outcome = Outcome(status="failed", exit_code=EXIT_BAD_INPUT, message=str(exc))
         except (ProcedureBug, MeasurementError, BenchError) as exc:
             outcome = Outcome(status="failed", exit_code=EXIT_FAULT, message=f"{type(exc).__name__}: {exc}")
+        except Exception as exc:  # a bug: still safe state, data kept, traceback in the log
+            log.exception("internal error")
+            outcome = Outcome(status="failed", exit_code=EXIT_FAULT,
+                              message=f"internal error ({type(exc).__name__}): {exc}; see log.txt")
         finally:
+            abort.shielded = True  # a second Ctrl-C must not interrupt the safe state
             if bench is not None:
                 outcome.safe_state = make_safe(bench, plan.limits, log)
                 try:
