@@ -95,8 +95,17 @@ _MANAGERS: dict[str, pyvisa.ResourceManager] = {}
 
 
 def _manager(visa_library: str) -> pyvisa.ResourceManager:
-    """Return a cached ResourceManager for ``visa_library`` ("@py" = pyvisa-py)."""
+    """Return a cached ResourceManager for ``visa_library`` ("@py" = pyvisa-py).
+
+    pyvisa gives every caller the same manager per library; if any code closed it, a new
+    one is opened rather than failing every later open with "Invalid session handle".
+    """
     rm = _MANAGERS.get(visa_library)
+    if rm is not None:
+        try:
+            rm.session  # noqa: B018 - raises once someone closed the shared manager
+        except pyvisa.errors.InvalidSession:
+            rm = None
     if rm is None:
         try:
             rm = pyvisa.ResourceManager(visa_library)
