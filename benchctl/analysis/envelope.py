@@ -25,7 +25,7 @@ from numpy.typing import ArrayLike, NDArray
 from scipy.signal import hilbert, welch
 
 from benchctl.analysis._common import as_record, check_positive
-from benchctl.analysis.spectrum import HarmonicAnalysis, _gram, _lines_basis, _project, harmonics
+from benchctl.analysis.spectrum import HarmonicAnalysis, _lines_lsq, harmonics
 from benchctl.analysis.waveform import fit_sine
 from benchctl.errors import MeasurementError
 
@@ -249,21 +249,10 @@ def modulation_index_spectrum(
 def _line_phasors(
     y: NDArray[np.float64], freqs_cycles: list[float]
 ) -> tuple[list[complex], NDArray[np.float64], float]:
-    """Least-squares DC + lines, as complex amplitudes P with line = Re(P exp(j w k')).
-
-    Same fit as :func:`benchctl.analysis.spectrum._harmonic_lsq` (centred time k'), keeping
-    the phases: a line c cos + s sin is the phasor c - j s.
-    """
-    n = y.size
-    basis = _lines_basis(freqs_cycles, n)
-    h = _gram([2.0 * math.pi * f for f in freqs_cycles], n)
-    try:
-        coef = np.linalg.solve(h, _project(basis, y))
-    except np.linalg.LinAlgError as exc:
-        raise MeasurementError("spectral lines too close to separate in this record") from exc
-    resid = y - np.einsum("i,ij->j", coef, basis)
+    """:func:`benchctl.analysis.spectrum._lines_lsq` with each line as a complex amplitude P,
+    line = Re(P exp(j w k')): a line c cos + s sin is the phasor c - j s."""
+    coef, resid, var_factor = _lines_lsq(y, freqs_cycles)
     phasors = [complex(c, -s) for c, s in zip(coef[1::2], coef[2::2], strict=True)]
-    var_factor = float(np.mean(np.diag(np.linalg.inv(h))[1:]))
     return phasors, resid, var_factor
 
 

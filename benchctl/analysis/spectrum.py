@@ -160,13 +160,14 @@ def _project(basis: NDArray[np.float64], v: NDArray[np.float64]) -> NDArray[np.f
     return np.einsum("ij,j->i", basis, v)
 
 
-def _harmonic_lsq(
+def _lines_lsq(
     y: NDArray[np.float64], freqs_cycles: list[float]
 ) -> tuple[NDArray[np.float64], NDArray[np.float64], float]:
-    """Least-squares fit of DC plus one sine per frequency (cycles/sample).
+    """Least-squares fit of DC plus one sine per frequency (cycles/sample), centred time.
 
-    Returns per-frequency peak amplitudes, the residual, and the unscaled variance factor
-    (average diagonal of (B^T B)^-1 for the cos/sin columns).
+    Returns the coefficients [dc, c1, s1, c2, s2, ...] (line k = c cos + s sin), the
+    residual, and the unscaled variance factor (average diagonal of (B^T B)^-1 for the
+    cos/sin columns).
     """
     n = y.size
     basis = _lines_basis(freqs_cycles, n)
@@ -176,9 +177,16 @@ def _harmonic_lsq(
     except np.linalg.LinAlgError as exc:
         raise MeasurementError("spectral lines too close to separate in this record") from exc
     resid = y - np.einsum("i,ij->j", coef, basis)
-    amps = np.hypot(coef[1::2], coef[2::2])
     var_factor = float(np.mean(np.diag(np.linalg.inv(h))[1:]))
-    return amps, resid, var_factor
+    return coef, resid, var_factor
+
+
+def _harmonic_lsq(
+    y: NDArray[np.float64], freqs_cycles: list[float]
+) -> tuple[NDArray[np.float64], NDArray[np.float64], float]:
+    """:func:`_lines_lsq` with per-frequency peak amplitudes instead of coefficients."""
+    coef, resid, var_factor = _lines_lsq(y, freqs_cycles)
+    return np.hypot(coef[1::2], coef[2::2]), resid, var_factor
 
 
 def _plan(
