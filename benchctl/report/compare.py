@@ -11,7 +11,7 @@ import numpy as np
 from rich.markup import escape as esc
 from rich.table import Table
 
-from benchctl.report.formatting import DASH, fmt, md_table
+from benchctl.report.formatting import DASH, fmt, json_safe, md_table
 from benchctl.report.runview import (
     X_CANDIDATES,
     RunView,
@@ -95,7 +95,7 @@ class Comparison:
 
     def to_dict(self) -> dict[str, Any]:
         """Plain data for ``--json`` (NaN and infinities become None)."""
-        return _clean(asdict(self) | {"shifted": list(self.shifted)})
+        return json_safe(asdict(self) | {"shifted": list(self.shifted)})
 
     def tables(self) -> list[Table]:
         """rich tables: parameters, then curves."""
@@ -323,11 +323,3 @@ def _curve_delta(step: str, label: str, ca: tuple[np.ndarray, np.ndarray],
                       float(np.sqrt(np.mean(diff**2))), float(grid[i]))
 
 
-def _clean(obj: Any) -> Any:
-    if isinstance(obj, dict):
-        return {k: _clean(v) for k, v in obj.items()}
-    if isinstance(obj, list | tuple):
-        return [_clean(v) for v in obj]
-    if isinstance(obj, float) and not math.isfinite(obj):
-        return None
-    return obj

@@ -15,7 +15,7 @@ from rich.markup import escape as esc
 from rich.table import Table
 
 from benchctl.errors import ConfigError
-from benchctl.report.formatting import fmt, md_table
+from benchctl.report.formatting import fmt, json_safe, md_table
 from benchctl.report.runview import (
     ParamKey,
     RunView,
@@ -79,7 +79,7 @@ class Datasheet:
 
     def to_dict(self) -> dict[str, Any]:
         """Plain data for ``--json`` (NaN and infinities become None)."""
-        return _clean(asdict(self))
+        return json_safe(asdict(self))
 
     def csv_text(self) -> str:
         """One CSV row per group and parameter; floats written with ``repr`` (full precision)."""
@@ -384,11 +384,3 @@ def _csv(value: float | None) -> str:
     return "" if value is None else float.__repr__(float(value))
 
 
-def _clean(obj: Any) -> Any:
-    if isinstance(obj, dict):
-        return {k: _clean(v) for k, v in obj.items()}
-    if isinstance(obj, list | tuple):
-        return [_clean(v) for v in obj]
-    if isinstance(obj, float) and not math.isfinite(obj):
-        return None
-    return obj

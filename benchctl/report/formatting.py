@@ -43,3 +43,14 @@ def md_table(header: list[str], rows: list[list[Any]]) -> str:
     lines = ["| " + " | ".join(md(c) for c in header) + " |", "|" + "---|" * len(header)]
     lines += ["| " + " | ".join(md(c) for c in row) + " |" for row in rows]
     return "\n".join(lines) + "\n"
+
+
+def json_safe(obj: Any) -> Any:
+    """``obj`` with every NaN or infinity replaced by None, recursively (strict JSON)."""
+    if isinstance(obj, dict):
+        return {k: json_safe(v) for k, v in obj.items()}
+    if isinstance(obj, list | tuple):
+        return [json_safe(v) for v in obj]
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return None
+    return obj

@@ -18,6 +18,7 @@ from rich.progress import (
 )
 
 from benchctl.procedures import base
+from benchctl.report.formatting import json_safe
 from benchctl.runner.engine import Events, Outcome
 from benchctl.runner.plan import Plan
 
@@ -94,7 +95,7 @@ class JsonEvents(Events):
         self.console = console
 
     def _emit(self, **obj: Any) -> None:
-        text = json.dumps(_finite(obj), default=_json_default, allow_nan=False)
+        text = json.dumps(json_safe(obj), default=_json_default, allow_nan=False)
         self.console.print(text, markup=False, highlight=False, soft_wrap=True)
 
     def run_started(self, plan: Plan, steps: int) -> None:
@@ -109,17 +110,6 @@ class JsonEvents(Events):
     def step_finished(self, step_name: str, results: Mapping[str, base.Result]) -> None:
         self._emit(event="step_finished", step=step_name,
                    results={k: {"value": r.value, "unit": r.unit, "uncertainty": r.uncertainty} for k, r in results.items()})
-
-
-def _finite(value: Any) -> Any:
-    """Replace NaN and infinities (not JSON) by null, recursively."""
-    if isinstance(value, float):
-        return value if math.isfinite(value) else None
-    if isinstance(value, Mapping):
-        return {str(k): _finite(v) for k, v in value.items()}
-    if isinstance(value, list | tuple):
-        return [_finite(v) for v in value]
-    return value
 
 
 def _json_default(value: Any) -> Any:
