@@ -15,10 +15,17 @@ def main(argv: list[str]) -> int:
     here = Path(__file__).parent
     wanted = set(argv)
     scripts = sorted(p for p in here.glob("bench_*.py") if not wanted or p.stem in wanted)
+    failed = []
     for script in scripts:
         print(f"\n=== {script.stem} ===", flush=True)
-        runpy.run_path(str(script), run_name="__main__")
-    return 0
+        try:
+            runpy.run_path(str(script), run_name="__main__")
+        except SystemExit as exc:  # a script's own exit code: note it, run the others
+            if exc.code not in (None, 0):
+                failed.append(script.stem)
+    if failed:
+        print(f"\nbenchmarks that reported a missed target or an error: {', '.join(failed)}")
+    return 1 if failed else 0
 
 
 if __name__ == "__main__":
