@@ -373,6 +373,7 @@ class BenchModel:
         self.record: Record | None = None
         self._record_serial = 0
         self._counts: dict[tuple, int] = {}
+        self._counted_setpoint_v: float | None = None
         self._history: list[_Transition] = [_Transition(0.0, False, 0.0)]
         self._evolved_s = 0.0
 
@@ -486,7 +487,12 @@ class BenchModel:
         if target != s.target_v or s.segments[-1].target != target:
             self._truncate_history(t)
             s.retarget(t, target)
-            self._counts.clear()  # a new visit of the rail: counts start again
+            if s.setpoint_v != self._counted_setpoint_v:
+                # A new rail setpoint: counts start again (so a resumed run reproduces the
+                # point). Switching the output off and on at the same setpoint keeps
+                # counting, so repeated power-ups there see independent noise.
+                self._counts.clear()
+                self._counted_setpoint_v = s.setpoint_v
             self.clock.advance_to(self._settled_at(t))
         self.cond.notify_all()
 
