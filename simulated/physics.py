@@ -34,7 +34,6 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy.signal import lfilter
 
 from benchctl.simulated.models import AmplifierModel, BoardModel, OscillatorBase
 
@@ -838,6 +837,8 @@ class BenchModel:
         on = mark[idx] > 0
         target = np.where(on, osc.vpp_at(rail), 0.0)
         alpha = -math.expm1(-dt / osc.tau_env_s)
+        from scipy.signal import lfilter  # here, so that `benchctl --help` stays quick
+
         filt, _ = lfilter([alpha], [1.0, alpha - 1.0], target, zi=[(1.0 - alpha) * target[0]])
         growth = np.ones_like(t)
         edges = np.flatnonzero(np.diff(on.astype(np.int8)) > 0) + 1
