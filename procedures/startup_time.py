@@ -28,7 +28,7 @@ from benchctl.procedures.base import (
     register,
 )
 from benchctl.procedures.common import RailTracker, check_rail, finite_or_none, point_key
-from benchctl.procedures.measure import OUTPUT_COLUMNS, measure_output
+from benchctl.procedures.measure import OUTPUT_COLUMNS, dwell, measure_output
 from benchctl.procedures.rail_sweep import MEASURE_PARAMS, measure_options, settling
 
 STARTUP_COLUMNS: tuple[Column, ...] = (
@@ -80,10 +80,10 @@ def analyse_shot(t_s: np.ndarray, out_v: np.ndarray, rail_v: np.ndarray, *, fs_h
     # flat tail: the first and last thirds of the tail agree within 2 %
     k = max(1, tail.size // 3)
     settled = bool(final > 0 and abs(np.mean(tail[-k:]) - np.mean(tail[:k])) <= 0.02 * final)
-    # The rail must start below the trigger level (half the target) in the record, or the
-    # step happened before it (a missed trigger): then no step time.
+    # The rail must start low in the record, or the step happened before it (a missed
+    # trigger, or a rail that had not discharged): then no step time.
     t_step = (first_crossing(t_s, rail_v, 0.5 * rail_target_v)
-              if float(np.median(rail_v[:8])) < 0.45 * rail_target_v else None)
+              if float(np.median(rail_v[:8])) < 0.25 * rail_target_v else None)
     t90 = first_crossing(t_s[: n - n_avg], env[: n - n_avg], 0.9 * final) if final > 0 else None
     return {"t_step_s": t_step, "t90_s": t90,
             "startup_time_s": (t90 - t_step) if t90 is not None and t_step is not None else None,
@@ -178,7 +178,7 @@ class StartupTime(Procedure):
               window: float, shot: int, key: str, timeout_s: float) -> dict[str, Any]:
         scope, supply = ctx.bench.scope, ctx.bench.supply
         tracker.off()
-        ctx.clock.sleep(float(params["off_s"]))
+        dwell(ctx, float(params["off_s"]))  # on the bench's time base: the rail really discharges
         supply.set_voltage(rail)
         rate = min(float(params["samples_per_cycle"]) * carrier, float(params["max_points"]) / window)
         scope.setup_channel(out_ch, scale_v_div=1.3 * vpp / 8, offset_v=offset)
