@@ -7,7 +7,6 @@ resumed run, hands back the recorded row for a key instead of measuring it again
 from __future__ import annotations
 
 import logging
-import math
 import threading
 import time
 from collections.abc import Callable, Mapping
@@ -134,8 +133,6 @@ class RunContext:
                 value = value.item()
             if not isinstance(value, _PLAIN):
                 raise ProcedureBug(f"step {self.step_name!r}: column {col!r} holds {type(value).__name__}")
-            if isinstance(value, float) and math.isnan(value):
-                value = math.nan
             row[col] = value
         return row
 
