@@ -357,6 +357,11 @@ class BenchModel:
     def __init__(self, board: BoardModel, *, seed: int = 1, realtime: bool = False,
                  wiring_generator: str = "rail", physics: BenchPhysics | None = None,
                  wall: Callable[[], float] = time.monotonic) -> None:
+        # imported with the bench, not with the package (so `benchctl --help` stays quick)
+        # and not at the first record (so the first acquisition is not late by an import)
+        from scipy.signal import lfilter
+
+        self._lfilter = lfilter
         self.board = board
         self.seed = int(seed)
         self.ph = physics or BenchPhysics()
@@ -837,9 +842,7 @@ class BenchModel:
         on = mark[idx] > 0
         target = np.where(on, osc.vpp_at(rail), 0.0)
         alpha = -math.expm1(-dt / osc.tau_env_s)
-        from scipy.signal import lfilter  # here, so that `benchctl --help` stays quick
-
-        filt, _ = lfilter([alpha], [1.0, alpha - 1.0], target, zi=[(1.0 - alpha) * target[0]])
+        filt, _ = self._lfilter([alpha], [1.0, alpha - 1.0], target, zi=[(1.0 - alpha) * target[0]])
         growth = np.ones_like(t)
         edges = np.flatnonzero(np.diff(on.astype(np.int8)) > 0) + 1
         runs = [(0, start.t, start.grow_rail_v)] if on[0] else []
