@@ -157,6 +157,7 @@ class SupplyState:
         self.ph = physics
         self.reset()
         self.segments: list[_Segment] = [_Segment(0.0, 0.0, 0.0, 0.0)]
+        self._starts = np.zeros(1)  # segment start times, kept with the list (sorted)
 
     def reset(self) -> None:
         self.setpoint_v = 0.0
@@ -169,8 +170,7 @@ class SupplyState:
     def output_v(self, t):
         """Output voltage at model time(s) ``t`` (scalar or array), V."""
         t_arr = np.asarray(t, dtype=float)
-        starts = np.fromiter((s.t0 for s in self.segments), float, len(self.segments))
-        idx = np.clip(np.searchsorted(starts, t_arr, side="right") - 1, 0, len(self.segments) - 1)
+        idx = np.clip(np.searchsorted(self._starts, t_arr, side="right") - 1, 0, len(self.segments) - 1)
         if t_arr.ndim == 0:
             v, _ = self.segments[int(idx)].eval(t_arr, self.ph.slew_v_per_s, self.ph.settle_tau_s)
             return float(v)
@@ -191,6 +191,12 @@ class SupplyState:
         self.target_v = float(target_v)
         if len(self.segments) > 4096:  # keep memory bounded; old history is settled anyway
             del self.segments[1:2048]
+        self._starts = np.fromiter((s.t0 for s in self.segments), float, len(self.segments))
+
+    def segments_since(self, t: float) -> list[_Segment]:
+        """The segments in force at or after model time ``t`` (earlier ones were superseded)."""
+        i = max(int(np.searchsorted(self._starts, t, side="right")) - 1, 0)
+        return self.segments[i:]
 
     def settled_at(self) -> float:
         """Model time at which the last segment has settled, s."""
@@ -414,7 +420,7 @@ class BenchModel:
             return
         t_from = self._evolved_s
         pieces = [t_from]
-        for seg in self.supply.segments:
+        for seg in self.supply.segments_since(t_from):
             end = seg.t0 + self.ph.settle_time_s(seg.target - seg.c0) + 14 * self.ph.settle_tau_s
             lo, hi = max(seg.t0, t_from), min(end, t_to)
             if hi > lo:
@@ -588,6 +594,11 @@ class BenchModel:
         self.acq = Acquisition(t_arm=self.clock.now(), wall_arm=self.wall(),
                                settings_key=self.scope.key(), fingerprint=fp,
                                rng=_rng(self.seed, "acq", fp, n))
+        if self.clock.realtime and self.scope.trigger_source == "IMMediate":
+            # the record's time span is known now: make it while the modelled time runs,
+            # whenever the client gets round to waiting for it
+            self._try_trigger(final=False)
+            self._synthesise_early(self.acq)
         self.cond.notify_all()
 
     def abort(self) -> None:
@@ -739,7 +750,7 @@ class BenchModel:
         if t_to < t_from:
             t_to = t_from
         pts = [t_from, t_to]
-        for seg in self.supply.segments:
+        for seg in self.supply.segments_since(t_from):
             end = seg.t0 + self.ph.settle_time_s(seg.target - seg.c0) + 14 * self.ph.settle_tau_s
             lo, hi = max(seg.t0, t_from), min(end, t_to)
             if hi > lo:
