@@ -3,7 +3,8 @@
 A procedure is a class registered by name with :func:`register`. It declares its
 parameters (:class:`Param`: type, unit, default) and the columns it records
 (:class:`Column`), and its ``run(ctx, params)`` measures points through
-``ctx.point(key, measure)`` and returns derived parameters (:class:`Result`).
+``ctx.point(key, measure)`` (or ``ctx.point_later``, whose analysis overlaps the next
+point's acquisition) and returns derived parameters (:class:`Result`).
 
 Resume rule: ``ctx.point`` returns the recorded row when a point with that key was
 already taken in an interrupted run, without calling ``measure``. So keys must follow
@@ -113,6 +114,30 @@ class StepContext(Protocol):
 
     def point(self, key: str, measure: Callable[[], Mapping[str, Any]]) -> Mapping[str, Any]:
         """Record one point (a row of the declared columns), or return it if recorded."""
+        ...
+
+    def point_later(self, key: str, measure: Callable[[], Callable[[], Mapping[str, Any]]],
+                    then: Callable[[Mapping[str, Any], bool], None] | None = None) -> None:
+        """Take a point in two parts, so its analysis overlaps the next point's acquisition.
+
+        ``measure()`` does all the instrument work and returns ``finish``, which makes the
+        row from what was acquired without touching an instrument. The runner calls
+        ``finish`` at its next :meth:`idle` or :meth:`flush` (at the latest when the step
+        ends) and then ``then(row, replayed)``; a recorded point (resume) calls
+        ``then(row, True)`` at once. Rows are recorded in the order the points were taken.
+        """
+        ...
+
+    def idle(self) -> None:
+        """Called by measuring code while it waits on an instrument: earlier rows are made."""
+        ...
+
+    def checkpoint(self) -> None:
+        """Check the instruments now for the point ``point_later`` is measuring (else a no-op)."""
+        ...
+
+    def flush(self) -> None:
+        """Make and record every row ``point_later`` has not recorded yet."""
         ...
 
     def save_waveform(self, key: str, **arrays: Any) -> str:

@@ -195,34 +195,68 @@ def _autoscale(scope: Any, channel: int, opts: MeasureOptions,
     return True
 
 
+def _crossings(y: np.ndarray, lo_v: float, hi_v: float) -> int:
+    """Transitions of ``y`` between below ``lo_v`` and above ``hi_v`` (a comparator with
+    hysteresis: noise near the middle does not count)."""
+    state = np.zeros(y.size, dtype=np.int8)
+    state[y > hi_v] = 1
+    state[y < lo_v] = -1
+    s = state[state != 0]
+    return int(np.count_nonzero(s[1:] != s[:-1]))
+
+
 def _still_fits(wf: Any, setup: ScopeSetup, opts: MeasureOptions) -> tuple[str | None, Any]:
     """("off" | "fits" | None, detection) for a record taken with a remembered set-up.
 
-    None means autoscale is needed; the detection (None for a clipped record) is handed on
-    to :func:`analyse_records` so the record is not examined twice.
+    None means autoscale is needed. "fits" is decided cheaply, before the record is
+    analysed: unclipped, 40-95 % of the screen, and 0.8-1.25 x the wanted cycles (counted
+    as crossings of a comparator with hysteresis at +-10 % of the span around the middle)
+    at 8 samples per cycle or more; the detector then runs with the analysis. Otherwise the
+    detector decides between "off" (a stopped board: one record decides) and autoscale,
+    and its result (None for a clipped record) is handed on so the record is not examined
+    twice.
     """
     if wf.clipped_samples > 0:
         return None, None
     y = np.asarray(wf.volts, dtype=float)
+    top, bottom = float(np.max(y)), float(np.min(y))
+    span_v = top - bottom
+    if 0.4 <= span_v / (8.0 * setup.scale_v_div) <= 0.95:
+        mid, band = 0.5 * (top + bottom), 0.1 * span_v
+        cycles = 0.5 * _crossings(y, mid - band, mid + band)
+        if 0.8 * opts.cycles <= cycles <= 1.25 * opts.cycles and y.size >= 8 * cycles:
+            return "fits", None
     det = _detect(y, _fs(wf), opts.band_hz)
-    if not det.oscillating:
-        return "off", det
-    screen_v = 8.0 * setup.scale_v_div
-    span = float(np.max(y) - np.min(y)) / screen_v
-    freq = finite_or_none(det.freq_hz)
-    if freq is None or not 0.4 <= span <= 0.95:
-        return None, det
-    cycles = freq * setup.window_s
-    if not 0.8 * opts.cycles <= cycles <= 1.25 * opts.cycles or _fs(wf) < 8 * freq:
-        return None, det
-    return "fits", det
+    return ("off" if not det.oscillating else None), det
 
 
 def measure_output(ctx: Any, opts: MeasureOptions, *, rail_set_v: float,
                    memory: ScopeMemory | None = None) -> dict[str, Any]:
     """Measure the output at the present rail; returns a row of :data:`OUTPUT_COLUMNS`.
 
-    With a :class:`ScopeMemory`, the set-up of the previous point is tried first.
+    With a :class:`ScopeMemory`, the set-up of the previous point is tried first. The same
+    as ``measure_output_deferred(...)()``.
+
+    Raises
+    ------
+    MeasurementError
+        Still clipped after ``opts.max_rescales`` re-autoscales.
+    """
+    return measure_output_deferred(ctx, opts, rail_set_v=rail_set_v, memory=memory)()
+
+
+def measure_output_deferred(ctx: Any, opts: MeasureOptions, *, rail_set_v: float,
+                            memory: ScopeMemory | None = None) -> Callable[[], dict[str, Any]]:
+    """The instrument part of :func:`measure_output`; returns ``finish``, which makes the row.
+
+    Everything that needs the bench happens here: the supply readbacks, the records, the
+    autoscales (whether the remembered set-up still fits is decided before returning).
+    ``finish()`` is pure computation on what was acquired, so it may run later -- while
+    the next point is being acquired (see ``ctx.point_later``).
+
+    While the first record is acquired, ``ctx.idle()`` lets the runner finish earlier
+    points, and ``ctx.checkpoint()`` checks the instruments after this point's commands to
+    the supply and generator.
 
     Raises
     ------
@@ -235,19 +269,29 @@ def measure_output(ctx: Any, opts: MeasureOptions, *, rail_set_v: float,
     rescales = 0
     waves: list[Any] = []
     done: dict[int, tuple[float, ...]] = {}  # id(record) -> its estimates, made while waiting
-    first_det: Any = None
+    dets: dict[int, Any] = {}  # id(record) -> its detection, made while waiting
+    dropped: list[Any] = []  # records not used, kept alive so that no id above is reused
     readings: dict[str, float | None] = {}
 
     def meanwhile() -> None:
-        # supply readbacks during the first acquisition; then, during each later one, the
-        # estimates of the record before it (numpy releases the interpreter lock)
+        # during the first acquisition: earlier points' rows, the supply readbacks and the
+        # instrument check; during each later one, the previous record's detection and
+        # estimates (numpy releases the interpreter lock)
         if not readings:
+            ctx.idle()
             readings["rail_v"] = finite_or_none(bench.supply.measure_voltage())
             readings["current_a"] = finite_or_none(bench.supply.measure_current())
-        elif waves and first_det is not None and first_det.oscillating:
-            last = waves[-1]
-            if id(last) not in done:
-                done[id(last)] = _record_estimates(last, opts)
+            ctx.checkpoint()
+            return
+        if not waves:
+            return
+        last = waves[-1]
+        det = dets.get(id(waves[0]))
+        if det is None:
+            det = dets[id(waves[0])] = _detect(np.asarray(waves[0].volts, dtype=float),
+                                                _fs(waves[0]), opts.band_hz)
+        if det.oscillating and id(last) not in done:
+            done[id(last)] = _record_estimates(last, opts)
 
     scaled, want = True, opts.records
     verdict = None
@@ -258,8 +302,11 @@ def measure_output(ctx: Any, opts: MeasureOptions, *, rail_set_v: float,
         if verdict is not None:
             memory.reused += 1
             waves.append(wf)
-            first_det = det
+            if det is not None:
+                dets[id(wf)] = det
             want = 1 if verdict == "off" else opts.records
+        else:
+            dropped.append(wf)
     if verdict is None:
         scaled = _autoscale(scope, ch, opts, memory)
         want = opts.records if scaled else 1
@@ -271,20 +318,23 @@ def measure_output(ctx: Any, opts: MeasureOptions, *, rail_set_v: float,
                     f"output at rail {rail_set_v:g} V still clipped ({wf.clipped_samples} samples)"
                     f" after {rescales} re-autoscales")
             rescales += 1
+            dropped.extend(waves)
+            dropped.append(wf)
             waves.clear()
-            first_det = None
             scaled = _autoscale(scope, ch, opts, memory)
             want = opts.records if scaled else 1
             continue
         waves.append(wf)
-        if first_det is None:
-            first_det = _detect(np.asarray(wf.volts, dtype=float), _fs(wf), opts.band_hz)
-    row = analyse_records(waves, opts, detection=first_det,
-                          estimates=[done.get(id(w)) for w in waves])
-    if not scaled:
-        row["osc_evidence"] = "autoscale found no periodic signal; " + row["osc_evidence"]
-    row.update(rail_set_v=float(rail_set_v), rescales=rescales, **readings)
-    return row
+
+    def finish() -> dict[str, Any]:
+        row = analyse_records(waves, opts, detection=dets.get(id(waves[0])),
+                              estimates=[done.get(id(w)) for w in waves])
+        if not scaled:
+            row["osc_evidence"] = "autoscale found no periodic signal; " + row["osc_evidence"]
+        row.update(rail_set_v=float(rail_set_v), rescales=rescales, **readings)
+        return row
+
+    return finish
 
 
 def _record_estimates(wf: Any, opts: MeasureOptions) -> tuple[float, ...]:

@@ -14,7 +14,7 @@ refinement round R -- all follow from the parameters and the earlier rows.
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from typing import Any
 
 from benchctl.errors import ConfigError
@@ -40,7 +40,7 @@ from benchctl.procedures.measure import (
     SETUP_COLUMNS,
     MeasureOptions,
     ScopeMemory,
-    measure_output,
+    measure_output_deferred,
     setup_as_row,
     setup_from_row,
 )
@@ -107,24 +107,39 @@ def sweep_points(
     total: int | None = None,
     memory: ScopeMemory | None = None,
 ) -> list[Mapping[str, Any]]:
-    """Measure ``rails`` in the given order on one branch; returns the rows."""
-    rows = []
+    """Measure ``rails`` in the given order on one branch; returns the rows.
+
+    Each point's analysis is made while the next point is acquired (``ctx.point_later``);
+    all rows are in when this returns.
+    """
+    rows: list[Mapping[str, Any]] = []
     side = "below" if branch == "up" else "above"
+
+    def taken(row: Mapping[str, Any], replayed: bool) -> None:
+        if replayed:
+            _recall(memory, row)  # a measured point left the memory as its row says already
+        rows.append(row)
+        ctx.progress(done + len(rows), total, {"rail_v": row.get("rail_set_v"),
+                                               "vpp_v": row.get("vpp_v"),
+                                               "oscillating": row.get("oscillating")})
+
     for i, rail_v in enumerate(rails):
         ctx.check_abort()
         key = point_key(branch, tag if round_no else f"{i:03d}", rail_v)
 
-        def measure(rail_v: float = rail_v) -> dict[str, Any]:
+        def measure(rail_v: float = rail_v) -> Callable[[], dict[str, Any]]:
             tracker.at(rail_v, branch=side, floor_v=floor_v, top_v=top_v)  # type: ignore[arg-type]
-            row = measure_output(ctx, opts, rail_set_v=rail_v, memory=memory)
-            row.update(branch=branch, round=round_no, **_remembered(memory))
+            finish = measure_output_deferred(ctx, opts, rail_set_v=rail_v, memory=memory)
+            remembered = _remembered(memory)  # as this point leaves it
+
+            def row() -> dict[str, Any]:
+                out = finish()
+                out.update(branch=branch, round=round_no, **remembered)
+                return out
             return row
 
-        row = ctx.point(key, measure)
-        _recall(memory, row)
-        rows.append(row)
-        ctx.progress(done + i + 1, total, {"rail_v": rail_v, "vpp_v": row.get("vpp_v"),
-                                           "oscillating": row.get("oscillating")})
+        ctx.point_later(key, measure, taken)
+    ctx.flush()
     return rows
 
 

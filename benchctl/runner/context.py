@@ -2,6 +2,12 @@
 
 It records each point in the run folder as it is taken (flushed per point) and, on a
 resumed run, hands back the recorded row for a key instead of measuring it again.
+
+A point taken with :meth:`RunContext.point_later` is recorded in two parts: the
+procedure's ``measure`` does the instrument work and returns ``finish`` (pure
+computation), and the row is made and recorded while the next point waits on an
+instrument (:meth:`RunContext.idle`), or at :meth:`RunContext.flush` -- at the latest when
+the step ends, also when it ends by an exception.
 """
 
 from __future__ import annotations
@@ -99,28 +105,110 @@ class RunContext:
         self._check = check
         self.replayed = 0
         self.measured = 0
+        # point_later: rows acquired but not yet made, oldest first (key, finish, then)
+        self._pending: list[tuple[str, Callable[[], Mapping[str, Any]], Callable | None]] = []
+        self._later_key: str | None = None  # the point_later point being measured
+        self._checked = False  # ... and whether checkpoint() checked the bench during it
 
     # -- points -----------------------------------------------------------------------
     def point(self, key: str, measure: Callable[[], Mapping[str, Any]]) -> Mapping[str, Any]:
-        if not isinstance(key, str) or not key or "/" in key or "\\" in key:
-            raise ProcedureBug(f"step {self.step_name!r}: point key must be a non-empty name, got {key!r}")
-        if key in self._step.rows:
-            raise ProcedureBug(f"step {self.step_name!r}: point key {key!r} used twice")
+        self._check_key(key)
         if key in self._recorded:
-            row = dict(self._recorded[key])
-            self._step.rows[key] = row
-            self.replayed += 1
-            self._on_point(self._step, row, True)
-            return row
+            self.flush()
+            return self._replay(key)
+        self.flush()  # rows are recorded in the order their points were taken
         self.check_abort()
         raw = measure()
         row = self._clean(key, raw)
         self._check()  # an instrument fault during the point: the point is not recorded
+        self._record(key, row)
+        return row
+
+    def point_later(self, key: str, measure: Callable[[], Callable[[], Mapping[str, Any]]],
+                    then: Callable[[Mapping[str, Any], bool], None] | None = None) -> None:
+        """Take a point whose row is made later; ``then(row, replayed)`` gets the row.
+
+        ``measure()`` does the instrument work and returns ``finish``: a callable that
+        makes the row from what was acquired without touching the instruments. The bench
+        is checked after ``measure`` (or, earlier, by :meth:`checkpoint` during it); the
+        row is made and recorded at the next :meth:`idle` or :meth:`flush`. A recorded
+        point (resume) calls ``then`` at once, without ``measure``.
+        """
+        self._check_key(key)
+        if key in self._recorded:
+            self.flush()
+            row = self._replay(key)
+            if then is not None:
+                then(row, True)
+            return
+        self.check_abort()
+        self._later_key, self._checked = key, False
+        try:
+            finish = measure()
+            if not self._checked:
+                self._check()  # an instrument fault during the point: it is not recorded
+        finally:
+            self._later_key = None
+        self.flush()  # older rows first (when measure never called idle)
+        self._pending.append((key, finish, then))
+
+    def idle(self) -> None:
+        """The procedure waits on an instrument: make and record the rows taken earlier.
+
+        Pure computation and the run folder only; no instrument I/O.
+        """
+        self.flush()
+
+    def checkpoint(self) -> None:
+        """Check the instruments now, for the point being measured by :meth:`point_later`.
+
+        Called by measuring code once its commands to the supply and generator are done
+        (while the scope acquires), so the check costs no time of its own. Does nothing
+        outside a ``point_later`` measure.
+        """
+        if self._later_key is not None:
+            self._check()
+            self._checked = True
+
+    def flush(self) -> None:
+        """Make and record every row still waiting (oldest first)."""
+        while self._pending:
+            key, finish, then = self._pending.pop(0)
+            row = self._clean(key, finish())
+            self._record(key, row)
+            if then is not None:
+                then(row, False)
+
+    def flush_after_failure(self) -> list[str]:
+        """After a failure: record what can still be made; returns the keys that could not."""
+        lost = []
+        while self._pending:
+            key, finish, _ = self._pending.pop(0)
+            try:
+                self._record(key, self._clean(key, finish()))
+            except Exception as exc:  # the step has failed already: keep what can be kept
+                self.log.warning("point %s could not be recorded after the failure: %s", key, exc)
+                lost.append(key)
+        return lost
+
+    def _check_key(self, key: str) -> None:
+        if not isinstance(key, str) or not key or "/" in key or "\\" in key:
+            raise ProcedureBug(f"step {self.step_name!r}: point key must be a non-empty name, got {key!r}")
+        if key in self._step.rows or any(key == p[0] for p in self._pending) or key == self._later_key:
+            raise ProcedureBug(f"step {self.step_name!r}: point key {key!r} used twice")
+
+    def _replay(self, key: str) -> dict[str, Any]:
+        row = dict(self._recorded[key])
+        self._step.rows[key] = row
+        self.replayed += 1
+        self._on_point(self._step, row, True)
+        return row
+
+    def _record(self, key: str, row: dict[str, Any]) -> None:
         self._folder.append_point(self._step.index, self._step.name, row, self._columns)
         self._step.rows[key] = row
         self.measured += 1
         self._on_point(self._step, row, False)
-        return row
 
     def _clean(self, key: str, raw: Mapping[str, Any]) -> dict[str, Any]:
         unknown = [k for k in raw if k not in self._columns and k != "point"]

@@ -200,7 +200,16 @@ def _run_step(step, plan, bench, folder, history, clock, abort, events, counts) 
         log=log.getChild(step.name),
         check=lambda: check_bench(bench),
     )
-    results = proc.run(ctx, dict(step.params))
+    try:
+        results = proc.run(ctx, dict(step.params))
+        ctx.flush()
+    except BaseException:
+        # points acquired and checked before the failure still get their rows
+        lost = ctx.flush_after_failure()
+        if lost:
+            log.warning("step %s: %d acquired point(s) could not be recorded: %s", step.name,
+                        len(lost), ", ".join(lost))
+        raise
     record.results = {r.name: r for r in results}
     history[step.name] = record
     events.step_finished(step.name, record.results)
