@@ -31,6 +31,7 @@ import sys
 import tempfile
 import time
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -54,19 +55,26 @@ ramp_v_per_s = 1000.0
 """
 
 
+SWEEP_RUNS = 5
+"""The sweep is timed this many times (one bench); the median run is reported: on a shared
+machine single runs were seen to vary by 25 %."""
+
+
 class Busy:
     """Accumulates the modelled time the simulated instruments are busy (model seconds).
 
+    Each acquisition's modelled duration is added when it finishes. Each supply change is
+    noted (its time and the trajectory segment it started) and its settling time worked
+    out only when asked, so that the accounting does not slow the simulated supply down.
     Overlapping busy intervals (back-to-back ramp steps) count once.
     """
 
     def __init__(self, sim: SimulatedBench, *, tol_v: float = 0.005) -> None:
         self.acquisition_s = 0.0
-        self.settle_s = 0.0
         self.acquisitions = 0
-        self.changes = 0
-        self._settle_until = -math.inf
-        bm = sim.bench
+        self._tol_v = tol_v
+        self._changes: list[tuple[float, Any]] = []
+        bm = self._bm = sim.bench
         finish, changed = bm._finish, bm.supply_changed
 
         def on_finish() -> None:
@@ -78,29 +86,36 @@ class Busy:
 
         def on_changed() -> None:
             t = bm.clock.now()
+            before = bm.supply.segments[-1]
             changed()
-            s = bm.supply
-            end = s.settled_at()
-            if end <= t:
-                return
-            grid = np.linspace(t, end, 2001)
-            out = np.flatnonzero(np.abs(s.output_v(grid) - s.target_v) > tol_v)
-            done = float(grid[min(out[-1] + 1, grid.size - 1)]) if out.size else t
-            start = max(t, self._settle_until)
-            if done > start:
-                self.settle_s += done - start
-                self.changes += 1
-            self._settle_until = max(self._settle_until, done)
+            last = bm.supply.segments[-1]
+            if last is not before:
+                self._changes.append((t, last))
 
         bm._finish, bm.supply_changed = on_finish, on_changed
 
-    @property
-    def floor_s(self) -> float:
-        return self.acquisition_s + self.settle_s
+    def _settling(self) -> tuple[float, int]:
+        s = self._bm.supply
+        total, counted, until = 0.0, 0, -math.inf
+        for t, seg in self._changes:
+            end = seg.t0 + abs(seg.target - seg.c0) / s.ph.slew_v_per_s + 20 * s.ph.settle_tau_s
+            if end <= t:
+                continue
+            grid = np.linspace(t, end, 2001)
+            v, _ = seg.eval(grid, s.ph.slew_v_per_s, s.ph.settle_tau_s)
+            out = np.flatnonzero(np.abs(v - seg.target) > self._tol_v)
+            done = float(grid[min(out[-1] + 1, grid.size - 1)]) if out.size else t
+            start = max(t, until)
+            if done > start:
+                total += done - start
+                counted += 1
+            until = max(until, done)
+        return total, counted
 
     def as_dict(self) -> dict:
-        return {"acquisition_s": self.acquisition_s, "settle_s": self.settle_s,
-                "acquisitions": self.acquisitions, "changes": self.changes}
+        settle_s, changes = self._settling()
+        return {"acquisition_s": self.acquisition_s, "settle_s": settle_s,
+                "acquisitions": self.acquisitions, "changes": changes}
 
 
 def serve() -> None:
@@ -226,23 +241,27 @@ down = false
 records = 1
 hold_s = 0.0
 """
+    runs = []
     with ChildBench() as sim:
-        wall, _, busy, fs = _run(sim, steps, tmp, "sweep")
+        for i in range(SWEEP_RUNS):
+            wall, _, busy, fs = _run(sim, steps, tmp, f"sweep{i}")
+            runs.append((wall / (busy["acquisition_s"] + busy["settle_s"]), wall, busy, fs))
     points = 100
-    floor = busy["acquisition_s"] + busy["settle_s"]
     ph = BenchPhysics()
     print(f"instrument numbers (simulated/physics.py): scope re-arm {ph.rearm_s * 1e3:g} ms per "
           f"acquisition, supply slew {ph.slew_v_per_s / 1e3:g} V/ms, settling tau "
           f"{ph.settle_tau_s * 1e6:g} us")
-    print(f"100-point sweep (hold_s = 0; bench in its own process): wall {wall:.3f} s, physical floor "
-          f"{floor:.3f} s ({busy['acquisitions']} acquisitions {busy['acquisition_s']:.3f} s + settling "
-          f"{busy['settle_s']:.3f} s)")
-    print(f"  ratio wall / floor = {wall / floor:.3f}   (target <= 1.15); "
+    print(f"100-point sweep (hold_s = 0; bench in its own process), {SWEEP_RUNS} runs, each its own "
+          "wall / floor ratio: " + ", ".join(f"{r[0]:.3f}" for r in runs))
+    ratio, wall, busy, fs = sorted(runs, key=lambda r: r[0])[len(runs) // 2]
+    floor = busy["acquisition_s"] + busy["settle_s"]
+    print(f"  median run: wall {wall:.3f} s, physical floor {floor:.3f} s ({busy['acquisitions']} "
+          f"acquisitions {busy['acquisition_s']:.3f} s + settling {busy['settle_s']:.3f} s)")
+    print(f"  ratio wall / floor = {ratio:.3f}   (target <= 1.15); "
           f"overhead {1e3 * (wall - floor) / points:.2f} ms per point")
-    print(f"  of the wall, the run folder's fsync: {fs.total_s:.3f} s in {fs.calls} calls "
+    print(f"  of its wall, the run folder's fsync: {fs.total_s:.3f} s in {fs.calls} calls "
           f"({1e3 * fs.total_s / points:.2f} ms per point); without it the ratio would be "
-          f"{(wall - fs.total_s) / floor:.3f}, overhead {1e3 * (wall - fs.total_s - floor) / points:.2f} ms "
-          "per point")
+          f"{(wall - fs.total_s) / floor:.3f}")
 
 
 def dropout_acquisitions(tmp: Path) -> None:
