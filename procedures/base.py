@@ -121,10 +121,12 @@ class StepContext(Protocol):
         """Take a point in two parts, so its analysis overlaps the next point's acquisition.
 
         ``measure()`` does all the instrument work and returns ``finish``, which makes the
-        row from what was acquired without touching an instrument. The runner calls
-        ``finish`` at its next :meth:`idle` or :meth:`flush` (at the latest when the step
-        ends) and then ``then(row, replayed)``; a recorded point (resume) calls
-        ``then(row, True)`` at once. Rows are recorded in the order the points were taken.
+        row from what was acquired without touching an instrument. The runner makes the
+        row at the next :meth:`idle`, records it after the instrument check that follows
+        the point (the next point's :meth:`checkpoint`, or :meth:`flush`; at the latest
+        when the step ends) and then calls ``then(row, replayed)``; a recorded point
+        (resume) calls ``then(row, True)`` at once. Rows are recorded in the order the
+        points were taken.
         """
         ...
 
@@ -133,11 +135,12 @@ class StepContext(Protocol):
         ...
 
     def checkpoint(self) -> None:
-        """Check the instruments now for the point ``point_later`` is measuring (else a no-op)."""
+        """Inside a ``point_later`` measure, once its supply and generator commands are sent:
+        check the instruments and record the points taken earlier (else a no-op)."""
         ...
 
     def flush(self) -> None:
-        """Make and record every row ``point_later`` has not recorded yet."""
+        """Check the instruments and record every point ``point_later`` has not recorded."""
         ...
 
     def save_waveform(self, key: str, **arrays: Any) -> str:

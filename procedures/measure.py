@@ -254,9 +254,9 @@ def measure_output_deferred(ctx: Any, opts: MeasureOptions, *, rail_set_v: float
     ``finish()`` is pure computation on what was acquired, so it may run later -- while
     the next point is being acquired (see ``ctx.point_later``).
 
-    While the first record is acquired, ``ctx.idle()`` lets the runner finish earlier
-    points, and ``ctx.checkpoint()`` checks the instruments after this point's commands to
-    the supply and generator.
+    While the first record is acquired, ``ctx.idle()`` lets the runner make the rows of
+    earlier points, and ``ctx.checkpoint()`` (after this point's supply readbacks) checks
+    the instruments and records those points.
 
     Raises
     ------
@@ -274,9 +274,9 @@ def measure_output_deferred(ctx: Any, opts: MeasureOptions, *, rail_set_v: float
     readings: dict[str, float | None] = {}
 
     def meanwhile() -> None:
-        # during the first acquisition: earlier points' rows, the supply readbacks and the
-        # instrument check; during each later one, the previous record's detection and
-        # estimates (numpy releases the interpreter lock)
+        # during the first acquisition: earlier points' rows, the supply readbacks, then
+        # the instrument check that lets the runner record those points; during each later
+        # one, the previous record's detection and estimates
         if not readings:
             ctx.idle()
             readings["rail_v"] = finite_or_none(bench.supply.measure_voltage())

@@ -3,11 +3,13 @@
 It records each point in the run folder as it is taken (flushed per point) and, on a
 resumed run, hands back the recorded row for a key instead of measuring it again.
 
-A point taken with :meth:`RunContext.point_later` is recorded in two parts: the
+A point taken with :meth:`RunContext.point_later` is taken in two parts: the
 procedure's ``measure`` does the instrument work and returns ``finish`` (pure
-computation), and the row is made and recorded while the next point waits on an
-instrument (:meth:`RunContext.idle`), or at :meth:`RunContext.flush` -- at the latest when
-the step ends, also when it ends by an exception.
+computation). The row is made while the next point waits on an instrument
+(:meth:`RunContext.idle`) and recorded after the instrument check that follows the point
+(:meth:`RunContext.checkpoint`, during the next point's acquisition, or
+:meth:`RunContext.flush`) -- at the latest when the step ends; when it ends by an
+exception, :meth:`RunContext.flush_after_failure` keeps what is safe to keep.
 """
 
 from __future__ import annotations
@@ -67,6 +69,20 @@ class StepRecord:
     results: dict[str, base.Result] = field(default_factory=dict)
 
 
+@dataclass
+class _Pending:
+    """A point_later point acquired and not yet recorded."""
+
+    key: str
+    finish: Callable[[], Mapping[str, Any]]
+    then: Callable[[Mapping[str, Any], bool], None] | None
+    row: dict[str, Any] | None = None
+
+    def make(self, ctx: RunContext) -> None:
+        if self.row is None:
+            self.row = ctx._clean(self.key, self.finish())
+
+
 class RunContext:
     """Implements :class:`benchctl.procedures.base.StepContext` for one step."""
 
@@ -105,10 +121,11 @@ class RunContext:
         self._check = check
         self.replayed = 0
         self.measured = 0
-        # point_later: rows acquired but not yet made, oldest first (key, finish, then)
-        self._pending: list[tuple[str, Callable[[], Mapping[str, Any]], Callable | None]] = []
+        # point_later: points acquired but not yet recorded, oldest first
+        self._pending: list[_Pending] = []
         self._later_key: str | None = None  # the point_later point being measured
-        self._checked = False  # ... and whether checkpoint() checked the bench during it
+        self._checked_during = False  # ... and whether checkpoint() ran during it
+        self._tainted: list[str] = []  # pending when a check failed: not kept (keys)
 
     # -- points -----------------------------------------------------------------------
     def point(self, key: str, measure: Callable[[], Mapping[str, Any]]) -> Mapping[str, Any]:
@@ -129,10 +146,12 @@ class RunContext:
         """Take a point whose row is made later; ``then(row, replayed)`` gets the row.
 
         ``measure()`` does the instrument work and returns ``finish``: a callable that
-        makes the row from what was acquired without touching the instruments. The bench
-        is checked after ``measure`` (or, earlier, by :meth:`checkpoint` during it); the
-        row is made and recorded at the next :meth:`idle` or :meth:`flush`. A recorded
-        point (resume) calls ``then`` at once, without ``measure``.
+        makes the row from what was acquired without touching the instruments. A point is
+        recorded only after an instrument check that ran after its ``measure`` ended: the
+        :meth:`checkpoint` of the next point (while the scope acquires) or :meth:`flush`.
+        When ``measure`` does not call :meth:`checkpoint`, the check follows it and the row
+        is recorded at once. A recorded point (resume) calls ``then`` at once, without
+        ``measure``.
         """
         self._check_key(key)
         if key in self._recorded:
@@ -142,59 +161,103 @@ class RunContext:
                 then(row, True)
             return
         self.check_abort()
-        self._later_key, self._checked = key, False
+        self._later_key, self._checked_during = key, False
         try:
             finish = measure()
-            if not self._checked:
-                self._check()  # an instrument fault during the point: it is not recorded
         finally:
             self._later_key = None
-        self.flush()  # older rows first (when measure never called idle)
-        self._pending.append((key, finish, then))
+        self._pending.append(_Pending(key, finish, then))
+        if not self._checked_during:
+            self.flush()  # nothing checked during the point: check and record now
 
     def idle(self) -> None:
-        """The procedure waits on an instrument: make and record the rows taken earlier.
+        """The procedure waits on an instrument: make the rows of the points taken earlier.
 
-        Pure computation and the run folder only; no instrument I/O.
+        Pure computation, no instrument I/O and nothing recorded yet (that waits for the
+        check, :meth:`checkpoint`).
         """
-        self.flush()
+        for p in self._pending:
+            p.make(self)
 
     def checkpoint(self) -> None:
-        """Check the instruments now, for the point being measured by :meth:`point_later`.
+        """Check the instruments now and record the points taken earlier (during point_later).
 
-        Called by measuring code once its commands to the supply and generator are done
-        (while the scope acquires), so the check costs no time of its own. Does nothing
-        outside a ``point_later`` measure.
+        Called by measuring code inside a :meth:`point_later` measure, after the commands of
+        the new point to the supply and generator (while the scope acquires): the check
+        then covers every command of the earlier points, which are recorded. A failed check
+        keeps them out of the data. Does nothing outside a ``point_later`` measure.
         """
-        if self._later_key is not None:
-            self._check()
-            self._checked = True
+        if self._later_key is None:
+            return
+        self._checked_during = True
+        if self._pending:
+            self._verify()
+            self._record_pending()
 
     def flush(self) -> None:
-        """Make and record every row still waiting (oldest first)."""
-        while self._pending:
-            key, finish, then = self._pending.pop(0)
-            row = self._clean(key, finish())
-            self._record(key, row)
-            if then is not None:
-                then(row, False)
+        """Check the instruments (if points are pending) and record every pending point."""
+        if self._pending:
+            self._verify()
+            self._record_pending()
 
     def flush_after_failure(self) -> list[str]:
-        """After a failure: record what can still be made; returns the keys that could not."""
+        """After a failure: record the pending points that can be; returns the others' keys.
+
+        A pending point is kept when an instrument check still passes after the failure
+        (an abort, an analysis error) and its row can be made; not when the failure was a
+        check that found a fault (the fault may have come from that point) or when the
+        instruments cannot be checked any more.
+        """
         lost = []
+        for key in self._tainted:
+            self.log.warning("point %s is not recorded: the instrument check that followed it "
+                             "found a fault", key)
+            lost.append(key)
+        self._tainted.clear()
+        if not self._pending:
+            return lost
+        reason = ""
+        try:
+            self._check()
+        except Exception as exc:  # the step has failed already: keep what can be kept
+            reason = f"the instruments could not be checked after it ({exc})"
         while self._pending:
-            key, finish, _ = self._pending.pop(0)
-            try:
-                self._record(key, self._clean(key, finish()))
-            except Exception as exc:  # the step has failed already: keep what can be kept
-                self.log.warning("point %s could not be recorded after the failure: %s", key, exc)
-                lost.append(key)
+            p = self._pending[0]
+            why = reason
+            if not why:
+                try:
+                    p.make(self)
+                    self._record(p.key, p.row)
+                except Exception as exc:
+                    why = f"its row could not be made ({exc})"
+            if why:
+                self.log.warning("point %s is not recorded: %s", p.key, why)
+                lost.append(p.key)
+            self._pending.pop(0)
         return lost
+
+    def _verify(self) -> None:
+        try:
+            self._check()
+        except BaseException:
+            # the fault may have come from these points: they leave the queue unrecorded
+            self._tainted.extend(p.key for p in self._pending)
+            self._pending.clear()
+            raise
+
+    def _record_pending(self) -> None:
+        while self._pending:
+            p = self._pending[0]
+            p.make(self)
+            self._record(p.key, p.row)
+            self._pending.pop(0)
+            if p.then is not None:
+                p.then(p.row, False)
 
     def _check_key(self, key: str) -> None:
         if not isinstance(key, str) or not key or "/" in key or "\\" in key:
             raise ProcedureBug(f"step {self.step_name!r}: point key must be a non-empty name, got {key!r}")
-        if key in self._step.rows or any(key == p[0] for p in self._pending) or key == self._later_key:
+        if key in self._step.rows or any(key == p.key for p in self._pending) or key == self._later_key:
             raise ProcedureBug(f"step {self.step_name!r}: point key {key!r} used twice")
 
     def _replay(self, key: str) -> dict[str, Any]:
