@@ -37,6 +37,9 @@ from benchctl.errors import (
 from .dialect import OPERATIONS, Dialect, Identity, Operation
 from .transport import Transport
 
+_PLAIN_REPLIES = frozenset({"number", "integer", "boolean"})
+"""Reply parsers whose text cannot hold a ';' (so a compound reply splits at the first)."""
+
 __all__ = ["DRIVERS", "Identity", "Instrument", "register_driver"]
 
 #: role -> driver class, filled by :func:`register_driver`.
@@ -140,6 +143,56 @@ class Instrument:
             self._unchecked.append(text)
             self.check_errors()
         return self._parse(operation, reply)
+
+    def ask_checked(self, op: str, /, *, before: str = "", **values: Any) -> Any:
+        """:meth:`ask`, then the error queue: one message when the dialect allows compound ones.
+
+        For a point of consequence (an acquisition done, the rail settled): the reply and the
+        queue's first entry come back together, so the check costs no round trip of its own.
+        ``before`` is a rendered command sent first (in the same message when compound).
+
+        Raises
+        ------
+        InstrumentError
+            The queue held an error (it is then read empty).
+        """
+        operation = self.dialect.operations.get(op) or self.dialect.op(op)
+        if self.strict or not self.dialect.compound or operation.reply not in _PLAIN_REPLIES:
+            if before:
+                self._write(before)
+            value = self.ask(op, **values)
+            if not self.strict:
+                self.check_errors()
+            return value
+        text = operation.render(**values)
+        if before:
+            self._unchecked.append(before)
+            text = f"{before}{';' if text.startswith('*') else ';:'}{text}"
+        joiner = ";" if self._error_text.startswith("*") else ";:"
+        self._unchecked.append(text)
+        try:
+            reply = self.transport.query(f"{text}{joiner}{self._error_text}")
+        except InstrumentTimeout:
+            try:  # a rejected query gets no reply: say why if the queue knows
+                self.check_errors()
+            except (InstrumentTimeout, ConnectionLost, ProtocolError):
+                pass
+            raise
+        head, sep, tail = reply.partition(";")
+        if not sep:
+            raise ProtocolError(f"the reply to {text!r} lacks the error queue's entry", reply)
+        value = self._parse(operation, head)
+        entry = self._parse(self._error_op, tail)
+        if entry[0] != 0:
+            suspects = "; ".join(self._unchecked)
+            self._unchecked.clear()
+            try:
+                self.check_errors()
+            except InstrumentError:
+                pass
+            raise InstrumentError(entry[0], entry[1], suspects, self.resource)
+        self._unchecked.clear()
+        return value
 
     def _parse(self, operation: Operation, reply: str) -> Any:
         try:

@@ -302,30 +302,23 @@ class Scope(Instrument):
     def acquire(self, *, timeout_s: float = 5.0) -> None:
         """Arm one acquisition and wait for it to complete (``*OPC?``), at most ``timeout_s``.
 
-        With compound messages, the arm and the completion query travel as one message.
+        With compound messages, the arm, the completion query and the error queue's first
+        entry travel as one message.
         """
-        arm = self.dialect.op("arm").render()
-        opc = self.dialect.op("opc")
         with self.timeout(timeout_s):
-            if self.dialect.compound and not self.strict:
-                joiner = ";" if opc.template.startswith("*") else ";:"
-                self._unchecked.append(arm)
-                self._parse(opc, self.transport.query(f"{arm}{joiner}{opc.render()}"))
-            else:
-                self.command("arm")
-                self.ask("opc")
-        if not self.strict:
-            self.check_errors()
+            self.ask_checked("opc", before=self.dialect.op("arm").render())
 
     def arm(self) -> None:
         """Arm one acquisition without waiting (pair with :meth:`wait_complete`)."""
         self.command("arm")
 
     def wait_complete(self, *, timeout_s: float) -> None:
-        """Wait (``*OPC?``) until the armed acquisition is complete, at most ``timeout_s``."""
-        self.sync(timeout_s=timeout_s)
-        if not self.strict:
-            self.check_errors()
+        """Wait (``*OPC?``) until the armed acquisition is complete, at most ``timeout_s``.
+
+        The error queue is read with the completion (one message where the dialect allows).
+        """
+        with self.timeout(timeout_s):
+            self.ask_checked("opc")
 
     def scaling(self, channel: int) -> dict[str, float]:
         """Return the last record's scaling: points, dt_s, t0_s, dy_v, y0_v."""

@@ -149,10 +149,9 @@ class Supply(Instrument):
         deadline = self.clock() + timeout_s
         reading_v = math.nan
         while True:
-            reading_v = self.measure_voltage()
+            # each reading comes with the error queue's first entry (one message)
+            reading_v = float(self.ask_checked("measure_voltage", **self._ch))
             if abs(reading_v - target_v) <= tol_v:
-                if not self.strict:
-                    self.check_errors()
                 return reading_v
             if self.clock() >= deadline:
                 break

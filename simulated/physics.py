@@ -88,6 +88,10 @@ class BenchPhysics:
         return abs(step_v) / self.slew_v_per_s + 14.0 * self.settle_tau_s
 
 
+FINE_WAIT_S = 3e-4
+"""Real time: how long before a modelled completion the wait turns to short steps, s."""
+
+
 class ModelClock:
     """Model time: the wall clock (real-time) or a counter moved by commands (accelerated)."""
 
@@ -200,7 +204,9 @@ class SupplyState:
         self.target_v = float(target_v)
         if len(self.segments) > 4096:  # keep memory bounded; old history is settled anyway
             del self.segments[1:2048]
-        self._starts = np.fromiter((s.t0 for s in self.segments), float, len(self.segments))
+            self._starts = np.fromiter((s.t0 for s in self.segments), float, len(self.segments))
+        else:
+            self._starts = np.append(self._starts, t)
 
     def segments_since(self, t: float) -> list[_Segment]:
         """The segments in force at or after model time ``t`` (earlier ones were superseded)."""
@@ -683,7 +689,9 @@ class BenchModel:
                     self.clock.advance_to(a.t_complete)
                     self._finish()
                     return True
-                self.cond.wait(min(delay, 0.05))
+                # the last stretch in short waits: one long timed wait was seen to
+                # overshoot by 0.1-0.2 ms, which a client would take as the scope's time
+                self.cond.wait(min(delay - FINE_WAIT_S, 0.05) if delay > 2 * FINE_WAIT_S else 2e-5)
             else:
                 self.cond.wait(0.05)
             if stop is not None and stop.is_set():
