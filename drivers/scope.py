@@ -14,6 +14,7 @@ memory) - the autoscale frequency estimate is a simpler interpolated-DFT peak.
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -123,6 +124,14 @@ def noise_sigma(volts: np.ndarray) -> float:
     return float(np.median(np.abs(d3 - np.median(d3))) / 0.6745 / math.sqrt(20.0))
 
 
+@functools.lru_cache(maxsize=8)
+def _hanning(n: int) -> np.ndarray:
+    """numpy's Hann window of n points, made once per length (read-only)."""
+    w = np.hanning(n)
+    w.flags.writeable = False
+    return w
+
+
 def dominant_frequency(volts: np.ndarray, dt_s: float, *, min_peak_ratio: float = 20.0) -> float:
     """Frequency of the strongest spectral line, Hz, by a Hann-windowed DFT with parabolic
     interpolation of the log-magnitude peak (common practice, no published source beyond
@@ -137,7 +146,7 @@ def dominant_frequency(volts: np.ndarray, dt_s: float, *, min_peak_ratio: float 
     n = x.size
     if n < 16:
         return math.nan
-    spec = np.abs(np.fft.rfft((x - x.mean()) * np.hanning(n)))
+    spec = np.abs(np.fft.rfft((x - x.mean()) * _hanning(n)))
     spec[0] = 0.0
     k = int(np.argmax(spec))
     floor = float(np.median(spec[1:]))
@@ -240,10 +249,13 @@ class Scope(Instrument):
         coupling: Coupling = "dc",
         probe: float = 1.0,
         enabled: bool = True,
+        check: bool = True,
     ) -> None:
         """Set one channel: vertical scale (V/div), centre voltage, coupling, probe factor.
 
-        The full screen spans 8 divisions (``range = 8 * scale_v_div``).
+        The full screen spans 8 divisions (``range = 8 * scale_v_div``). With
+        ``check=False`` (fast mode) the error queue is left for the next point of
+        consequence -- an acquisition's completion, say -- which then names these commands.
         """
         if not (math.isfinite(scale_v_div) and scale_v_div > 0):
             raise ValueError(f"{scale_v_div=} must be > 0")
@@ -262,11 +274,14 @@ class Scope(Instrument):
         self.command("set_range", channel=channel, range_v=range_v)
         self.command("set_offset", channel=channel, offset_v=offset_v)
         self._screen[channel] = (range_v, offset_v)
-        if not self.strict:
+        if not self.strict and check:
             self.check_errors()
 
-    def set_timebase(self, *, window_s: float, sample_rate_hz: float) -> tuple[float, int]:
+    def set_timebase(self, *, window_s: float, sample_rate_hz: float,
+                     check: bool = True) -> tuple[float, int]:
         """Set the record to ``window_s`` seconds at about ``sample_rate_hz``.
+
+        ``check=False``: as for :meth:`setup_channel`.
 
         Returns
         -------
@@ -281,7 +296,7 @@ class Scope(Instrument):
         self.command("set_points", points=points)
         self.command("set_window", window_s=window_s)
         self._points = points
-        if not self.strict:
+        if not self.strict and check:
             self.check_errors()
         return window_s, points
 
@@ -477,8 +492,10 @@ class Scope(Instrument):
         stage = "range"
         grows = 0
         while n_acq < max_acquisitions:
-            self.setup_channel(channel, scale_v_div=scale, offset_v=offset, coupling=coupling, probe=probe)
-            self.set_timebase(window_s=window_s, sample_rate_hz=points / window_s)
+            # the acquisition's completion reads the error queue for these settings too
+            self.setup_channel(channel, scale_v_div=scale, offset_v=offset, coupling=coupling,
+                               probe=probe, check=False)
+            self.set_timebase(window_s=window_s, sample_rate_hz=points / window_s, check=False)
             self.acquire(timeout_s=timeout_s + window_s)
             wf = self.fetch(channel)
             n_acq += 1
