@@ -88,10 +88,6 @@ class BenchPhysics:
         return abs(step_v) / self.slew_v_per_s + 14.0 * self.settle_tau_s
 
 
-STEADY_V = 1e-6
-"""A supply output this close to its setpoint counts as constant when a record is made (a
-thousandth of the readback resolution, far below the scope's LSB and the noise), V."""
-
 FINE_WAIT_S = 3e-4
 """Real time: how long before a modelled completion the wait turns to short steps, s."""
 
@@ -211,21 +207,6 @@ class SupplyState:
             self._starts = np.fromiter((s.t0 for s in self.segments), float, len(self.segments))
         else:
             self._starts = np.append(self._starts, t)
-
-    def constant_over(self, t0: float, t1: float) -> float | None:
-        """The output over [t0, t1] when it is settled and unchanged there (else None), V.
-
-        Settled: the segment's ramp is over and what remains of the step at ``t0`` is below
-        :data:`STEADY_V` (it only shrinks after that).
-        """
-        segs = self.segments_since(t0)
-        if len(segs) != 1 and segs[1].t0 <= t1:
-            return None
-        g = segs[0]
-        if t0 < g.t0 + abs(g.target - g.c0) / self.ph.slew_v_per_s:
-            return None
-        v, _ = g.eval(t0, self.ph.slew_v_per_s, self.ph.settle_tau_s)
-        return g.target if abs(float(v) - g.target) < STEADY_V else None
 
     def segments_since(self, t: float) -> list[_Segment]:
         """The segments in force at or after model time ``t`` (earlier ones were superseded)."""
@@ -870,25 +851,17 @@ class BenchModel:
     def _signals(self, t: np.ndarray, ref: tuple[float, float, float]) -> dict[int, np.ndarray]:
         """Noise-free board output (ch1) and rail (ch2) at times ``t``."""
         t_ref, phi_c, phi_g = ref
+        rail = self.rail_v(t, phi_g, t_ref)
         board = self.board
         if isinstance(board, AmplifierModel):
-            rail = self.rail_v(t, phi_g, t_ref)
             vin = (self.generator.waveform(t, phi_g, t_ref) - self.generator.dc_v()
                    if self.wiring_generator == "input" else np.zeros_like(t))
             return {1: board.output(vin, rail), 2: rail}
         osc = self._osc()
         dt = float(t[1] - t[0]) if len(t) > 1 else 1e-9
-        steady = self._steady_envelope(t)
-        if steady is not None:  # the common case, made faster: all but the phase constant
-            rail_h, env, f0 = steady
-            rail = np.full(t.size, rail_h)
-            cum = (f0 * dt) * np.arange(t.size, dtype=float)
-        else:
-            rail = self.rail_v(t, phi_g, t_ref)
-            env = self._envelope(t, rail, dt)
-            f = osc.freq_at(rail)
-            cum = np.concatenate(([0.0], np.cumsum(0.5 * (f[1:] + f[:-1]) * dt)))
-            rail_h = rail
+        env = self._envelope(t, rail, dt)
+        f = osc.freq_at(rail)
+        cum = np.concatenate(([0.0], np.cumsum(0.5 * (f[1:] + f[:-1]) * dt)))
         # integral of f from t_ref to t[0]
         if t_ref != t[0]:
             tq = np.linspace(t_ref, t[0], 65)
@@ -897,35 +870,9 @@ class BenchModel:
         else:
             head = 0.0
         phase = phi_c + 2 * np.pi * (cum + head)
-        h2, h3 = osc.harmonics_at(rail_h)
+        h2, h3 = osc.harmonics_at(rail)
         y = env / 2 * (np.sin(phase) + h2 * np.sin(2 * phase + 0.4) + h3 * np.sin(3 * phase + 1.1))
         return {1: y, 2: rail}
-
-    def _steady_envelope(self, t: np.ndarray) -> tuple[float, float, float] | None:
-        """(rail V, envelope Vpp, frequency Hz) when all are constant over the record, else None.
-
-        Constant: the rail is the settled supply output alone (no generator wave on it), the
-        board keeps its state over the record, and a running board's start-up growth is
-        complete (within 1e-12) at the record's start -- what :meth:`_envelope` would then
-        give everywhere.
-        """
-        osc = self._osc()
-        gen = self.generator
-        if self._gen_on_rail() and gen.ac_amplitude_v() > 0:
-            return None
-        v = self.supply.constant_over(float(t[0]), float(t[-1]))
-        if v is None:
-            return None
-        r = v + (gen.dc_v() if self._gen_on_rail() else 0.0)
-        start = self.state_at(float(t[0]))
-        on = r >= osc.startup_v or (r >= osc.dropout_v and start.on)
-        if on != start.on:
-            return None
-        if not on:
-            return r, 0.0, float(osc.freq_at(r))
-        if float(osc.growth_factor(float(t[0]) - start.t, start.grow_rail_v)) < 1.0 - 1e-12:
-            return None
-        return r, float(osc.vpp_at(r)), float(osc.freq_at(r))
 
     def _envelope(self, t: np.ndarray, rail: np.ndarray, dt: float) -> np.ndarray:
         """Amplitude (Vpp of the fundamental) of the oscillator along a record."""
