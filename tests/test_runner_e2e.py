@@ -19,11 +19,13 @@ import threading
 import time
 
 import pytest
-from hypothesis import given, settings
+from hypothesis import assume, given, settings
 from hypothesis import strategies as st
 from rich.console import Console
 
 from benchctl.cli import main
+from benchctl.errors import ConfigErrors
+from benchctl.runner.plan import parse_plan
 from benchctl.simulated import SimulatedBench
 from benchctl.store import RunFolder
 
@@ -366,6 +368,13 @@ def test_generated_bad_plans_exit_2_with_one_line_each_and_send_nothing(tmp_path
             n = next(counter)
             plan = tmp_path / f"gen-{n}.toml"
             plan.write_text(text)
+            try:
+                valid = parse_plan(text, file=str(plan))
+            except ConfigErrors:
+                valid = None
+            if valid is not None:  # it will run for real: keep that short (a ramp of
+                # 0.03 V/s or a 0.1 mV grid is a valid plan that would take minutes)
+                assume(valid.limits.ramp_v_per_s >= 1.0 and valid.steps[0].params["step_v"] >= 0.05)
             out_dir = tmp_path / f"gen-run-{n}"
             sent = {role: len(sim.command_log(role)) for role in roles}
             code, out = _run(["run", str(plan), "--bench", bench, "--out", str(out_dir), "--quiet"])
