@@ -294,6 +294,7 @@ class Transport:
         *,
         expected_bytes: int | None = None,
         prefix: Callable[[str], int | None] | None = None,
+        prefix_units: int = 1,
     ) -> bytes | bytearray:
         """Send ``message`` and read its IEEE 488.2 definite-length block reply fast.
 
@@ -313,6 +314,9 @@ class Transport:
             For a compound query whose reply is ``<text>;<block>`` (IEEE 488.2 response
             units joined by ';'): ``prefix(text)`` gets the text and returns the expected
             payload size (or None). Needs :attr:`direct`.
+        prefix_units : int
+            How many text response units come before the block (``prefix`` then gets them
+            all, still joined by ';').
 
         Returns
         -------
@@ -329,7 +333,7 @@ class Transport:
         t0 = time.perf_counter()
         self.write(message)
         if prefix is not None:
-            text = self._read_prefix(message)
+            text = self._read_prefix(message, units=prefix_units)
             expected_bytes = prefix(text)
         head = self._read_exact(2, message)
         if head[:1] != b"#" or not head[1:2].isdigit():
@@ -480,10 +484,10 @@ class Transport:
         """True if blocks are read straight from the session's socket."""
         return self._socket_path() is not None
 
-    def _read_prefix(self, message: str, *, limit: int = 4096) -> str:
-        """Read the text response unit before a block, up to its ';' separator.
+    def _read_prefix(self, message: str, *, units: int = 1, limit: int = 4096) -> str:
+        """Read the ``units`` text response units before a block, up to the ';' after them.
 
-        Receives in small pieces; whatever follows the ';' goes back into pyvisa-py's
+        Receives in small pieces; whatever follows that ';' goes back into pyvisa-py's
         pending buffer, which every later read takes first.
         """
         path = self._socket_path()
@@ -497,7 +501,11 @@ class Transport:
             while True:
                 # the separator must come before the block starts ('#'): a payload may hold ';'
                 mark = got.find(b"#")
-                cut = got.find(b";", 0, mark if mark >= 0 else len(got))
+                cut = -1
+                for _ in range(units):
+                    cut = got.find(b";", cut + 1, mark if mark >= 0 else len(got))
+                    if cut < 0:
+                        break
                 if cut >= 0:
                     pending[:0] = got[cut + 1 :]
                     return got[:cut].decode("ascii", errors="replace")

@@ -113,15 +113,19 @@ def acquire_output(ctx: Any, *, timeout_s: float,
     """
     scope = ctx.bench.scope
     arm, wait = getattr(scope, "arm", None), getattr(scope, "wait_complete", None)
+    channel = ctx.bench.wiring.output_channel
     if meanwhile is not None and arm is not None and wait is not None:
         arm()
         meanwhile()
+        wait_and_fetch = getattr(scope, "wait_and_fetch", None)
+        if wait_and_fetch is not None:  # the completion and the record in one exchange
+            return wait_and_fetch(channel, timeout_s=timeout_s)
         wait(timeout_s=timeout_s)
     else:  # a scope without split arm/wait: the work follows the acquisition
         scope.acquire(timeout_s=timeout_s)
         if meanwhile is not None:
             meanwhile()
-    return scope.fetch(ctx.bench.wiring.output_channel)
+    return scope.fetch(channel)
 
 
 FALLBACK_SETUP = ScopeSetup(scale_v_div=0.5, offset_v=0.0, window_s=1e-3, sample_rate_hz=1e7)

@@ -377,6 +377,34 @@ def test_fast_fetch_is_one_exchange_strict_fetch_is_checked(sim_bench) -> None:
                 assert sent == ["TRACe:SCALing? CH1;:TRACe:DATA? CH1"]
 
 
+def test_wait_and_fetch_is_one_exchange_and_gives_the_record_fetch_gives(fast) -> None:
+    sim, b = fast
+    _power_up(b, 5.0)
+    sc, ch = b.scope, b.wiring.output_channel
+    sc.setup_channel(ch, scale_v_div=0.5)
+    sc.set_timebase(window_s=1e-5, sample_rate_hz=1e9)
+    sc.set_trigger(source="free")
+    sc.arm()
+    n = len(sim.command_log("scope"))
+    wf = sc.wait_and_fetch(ch, timeout_s=2.0)
+    sent = sim.command_log("scope")[n:]
+    assert sent[-1] == "*OPC?;:TRACe:SCALing? CH1;:TRACe:DATA? CH1"
+    again = sc.fetch(ch)  # the same last record, fetched the usual way
+    assert wf.volts.size == again.volts.size == 10_000
+    np.testing.assert_array_equal(wf.volts, again.volts)
+    assert (wf.dt_s, wf.t0_s, wf.clipped_samples) == (again.dt_s, again.t0_s, again.clipped_samples)
+    # an error queued meanwhile is left to the next check, which names the exchange; an
+    # error text may hold ';' (SCPI-1999 vol. 2, 21.8: "<description>;<device info>")
+    sc.arm()
+    sim.inject("scope", "push_error", code=-222, message="Data out of range;CH1")
+    assert sc.wait_and_fetch(ch, timeout_s=2.0).volts.size == 10_000
+    with pytest.raises(InstrumentError) as info:
+        sc.check_errors()
+    assert info.value.code == -222 and "TRACe:DATA? CH1" in info.value.command
+    sc.arm()
+    assert sc.wait_and_fetch(ch, timeout_s=2.0).volts.size == 10_000  # the session is in step
+
+
 def test_large_record_decoded_in_pieces_matches_ascii_and_the_clip_count(fast) -> None:
     # 300 000 samples: the block is decoded in several cache-sized pieces; the ASCII
     # transfer of the same record (volts as NR3 text) is the reference.

@@ -746,10 +746,11 @@ class _SupplyFaultBeforePoint(AbortFlag):
 
 
 class _TripDuringRecords:
-    """Wraps the opened bench's ``scope.wait_complete``: its ``nth`` call after ``rows`` rows
-    were reported trips the simulated supply's over-voltage protection -- while the scope
-    acquires a record of point ``rows``, after that point's checkpoint. Notes what had been
-    reported and the supply's state at that moment."""
+    """Wraps the opened bench's ``scope.wait_complete`` and ``scope.wait_and_fetch`` (the
+    waits for a record's completion): the ``nth`` wait after ``rows`` rows were reported trips
+    the simulated supply's over-voltage protection -- while the scope acquires a record of
+    point ``rows``, after that point's checkpoint. Notes what had been reported and the
+    supply's state at that moment."""
 
     def __init__(self, sim, events, rows, nth):
         self.sim, self.events, self.rows, self.nth = sim, events, rows, nth
@@ -757,19 +758,27 @@ class _TripDuringRecords:
         self.reported_at_trip = None
         self.supply_at_trip = None
 
+    def _maybe_trip(self):
+        if self.reported_at_trip is None and len(self.events.points) >= self.rows:
+            self.calls += 1
+            if self.calls == self.nth:
+                self.reported_at_trip = [k for k, _ in self.events.points]
+                self.supply_at_trip = self.sim.supply_state()
+                self.sim.inject("supply", "trip_ovp")
+
     def __call__(self, bench):
-        wait = bench.scope.wait_complete
+        wait, wait_and_fetch = bench.scope.wait_complete, bench.scope.wait_and_fetch
 
         def wait_complete(**kw):
-            if self.reported_at_trip is None and len(self.events.points) >= self.rows:
-                self.calls += 1
-                if self.calls == self.nth:
-                    self.reported_at_trip = [k for k, _ in self.events.points]
-                    self.supply_at_trip = self.sim.supply_state()
-                    self.sim.inject("supply", "trip_ovp")
+            self._maybe_trip()
             return wait(**kw)
 
+        def wait_and_fetch_(*args, **kw):
+            self._maybe_trip()
+            return wait_and_fetch(*args, **kw)
+
         bench.scope.wait_complete = wait_complete
+        bench.scope.wait_and_fetch = wait_and_fetch_
         return bench
 
 
