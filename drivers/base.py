@@ -182,16 +182,9 @@ class Instrument:
         if not sep:
             raise ProtocolError(f"the reply to {text!r} lacks the error queue's entry", reply)
         value = self._parse(operation, head)
-        entry = self._parse(self._error_op, tail)
-        if entry[0] != 0:
-            suspects = "; ".join(self._unchecked)
-            self._unchecked.clear()
-            try:
-                self.check_errors()
-            except InstrumentError:
-                pass
-            raise InstrumentError(entry[0], entry[1], suspects, self.resource)
+        suspects = "; ".join(self._unchecked)
         self._unchecked.clear()
+        self._raise_if_error(self._parse(self._error_op, tail), suspects, more=True)
         return value
 
     def _parse(self, operation: Operation, reply: str) -> Any:

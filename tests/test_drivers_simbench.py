@@ -246,6 +246,29 @@ def test_queued_error_fast_mode_at_a_point_of_consequence(fast) -> None:
     assert info.value.code == -222 and "SOURce:VOLTage 1.5" in info.value.command
 
 
+def test_settling_and_completion_read_the_error_queue_in_the_same_message(fast) -> None:
+    sim, b = fast
+    _power_up(b, 4.0)
+    b.supply.set_voltage(4.5)
+    sim.inject("supply", "push_error", code=-222, message="Data out of range")
+    n = len(sim.command_log("supply"))
+    with pytest.raises(InstrumentError) as info:
+        b.supply.wait_settled(4.5, tol_v=0.02, timeout_s=2.0)
+    assert info.value.code == -222 and "SOURce:VOLTage 4.5" in info.value.command
+    assert "MEASure:VOLTage:DC?;:SYSTem:ERRor:NEXT?" in sim.command_log("supply")[n:]
+    assert b.supply.drain_errors() == []  # read empty
+    assert b.supply.wait_settled(4.5, tol_v=0.02, timeout_s=2.0) == pytest.approx(4.5, abs=0.02)
+    sc = b.scope
+    sc.set_timebase(window_s=1e-5, sample_rate_hz=1e8)
+    sc.arm()
+    sim.inject("scope", "push_error", code=-222, message="Data out of range")
+    n = len(sim.command_log("scope"))
+    with pytest.raises(InstrumentError) as info:
+        sc.wait_complete(timeout_s=2.0)
+    assert info.value.code == -222
+    assert "*OPC?;:SYSTem:ERRor:NEXT?" in sim.command_log("scope")[n:]
+
+
 def test_fault_delay_is_a_timeout_then_the_session_recovers(fast) -> None:
     sim, b = fast
     b.supply.query_retries = 0

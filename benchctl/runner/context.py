@@ -239,7 +239,7 @@ class RunContext:
     def _verify(self) -> None:
         try:
             self._check()
-        except BaseException:
+        except Exception:  # (an interrupt leaves them to flush_after_failure's own check)
             # the fault may have come from these points: they leave the queue unrecorded
             self._tainted.extend(p.key for p in self._pending)
             self._pending.clear()
