@@ -204,11 +204,9 @@ def _run_step(step, plan, bench, folder, history, clock, abort, events, counts) 
         results = proc.run(ctx, dict(step.params))
         ctx.flush()
     except BaseException:
-        # points acquired and checked before the failure still get their rows
-        lost = ctx.flush_after_failure()
-        if lost:
-            log.warning("step %s: %d acquired point(s) could not be recorded: %s", step.name,
-                        len(lost), ", ".join(lost))
+        # points acquired before the failure are recorded if a check still passes; the
+        # context logs each one it cannot keep, with the reason
+        ctx.flush_after_failure()
         raise
     record.results = {r.name: r for r in results}
     history[step.name] = record
