@@ -362,6 +362,7 @@ class RailTracker:
     rail_v: float | None = None
     _set_v: float | None = None  # the setpoint this tracker last sent, V
     _set_at_s: float = -math.inf  # when, on ctx.clock, s
+    _poll_kw: dict[str, float] | None = field(default=None, repr=False)  # see _settle
 
     SMALL_STEP_V = 0.1
     """A move no larger than this is one setpoint step (the size of the supply driver's ramp
@@ -395,7 +396,9 @@ class RailTracker:
 
     def _settle(self, rail_v: float, hold_s: float | None = None) -> float:
         s = self.settling
-        kw = {"poll_s": s.poll_s} if _takes_poll(self._supply) else {}
+        kw = self._poll_kw
+        if kw is None:  # asked once: inspecting a signature costs more than a settling read
+            kw = self._poll_kw = {"poll_s": s.poll_s} if _takes_poll(self._supply) else {}
         try:
             got = self._supply.wait_settled(rail_v, tol_v=s.tol_v, timeout_s=s.timeout_s, **kw)
         except InstrumentTimeout:
