@@ -128,7 +128,11 @@ class BoardModel:
         raise NotImplementedError
 
 
-def _ramp_in(rail_v, knee_v: float = 0.7):
+_KNEE_V = 0.7
+"""Rail below which a board's current ramps in linearly from 0 (see :func:`_ramp_in`), V."""
+
+
+def _ramp_in(rail_v, knee_v: float = _KNEE_V):
     """0 at 0 V rising linearly to 1 at ``knee_v``: a board draws nothing without a rail."""
     return np.clip(np.asarray(rail_v, dtype=float) / knee_v, 0.0, 1.0)
 
@@ -279,6 +283,15 @@ class OscillatorBase(BoardModel):
 
     def current_at(self, rail_v, oscillating=True):
         """Supply current, A: idle law when stopped, oscillating law when running."""
+        if isinstance(rail_v, (float, int)) and isinstance(oscillating, (bool, np.bool_)):
+            r = float(rail_v)  # one readback: the same law in floats
+            if r <= 0:
+                return 0.0
+            if oscillating:
+                base = self.current_osc_a + self.current_osc_a_per_v * r
+            else:
+                base = self.current_idle_a + self.current_idle_a_per_v * r
+            return base * min(r / _KNEE_V, 1.0)
         r = np.asarray(rail_v, dtype=float)
         idle = self.current_idle_a + self.current_idle_a_per_v * r
         run = self.current_osc_a + self.current_osc_a_per_v * r

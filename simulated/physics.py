@@ -26,6 +26,7 @@ was replayed from the run folder rather than measured again.
 
 from __future__ import annotations
 
+import bisect
 import hashlib
 import math
 import threading
@@ -150,6 +151,21 @@ class _Segment:
     c0: float
     target: float
 
+    def at(self, t: float, slew: float, tau: float) -> tuple[float, float]:
+        """:meth:`eval` at one time, in floats (what a readback or a setpoint change needs)."""
+        dt = t - self.t0
+        if dt < 0.0:
+            dt = 0.0
+        span = self.target - self.c0
+        k = math.copysign(slew, span) if span else 0.0
+        t_r = abs(span) / slew
+        m = dt if dt < t_r else t_r
+        v_ramp = self.c0 + k * m - k * tau + (self.v0 - self.c0 + k * tau) * math.exp(-m / tau)
+        c = self.c0 + k * m
+        if dt <= t_r:
+            return v_ramp, c
+        return self.target + (v_ramp - self.target) * math.exp(-(dt - t_r) / tau), c
+
     def eval(self, t, slew: float, tau: float):
         dt = np.maximum(np.asarray(t, dtype=float) - self.t0, 0.0)
         span = self.target - self.c0
@@ -170,7 +186,8 @@ class SupplyState:
         self.ph = physics
         self.reset()
         self.segments: list[_Segment] = [_Segment(0.0, 0.0, 0.0, 0.0)]
-        self._starts = np.zeros(1)  # segment start times, kept with the list (sorted)
+        self._starts: list[float] = [0.0]  # segment start times, kept with the list (sorted)
+        self._starts_np: np.ndarray | None = None  # the same as an array, made when needed
 
     def reset(self) -> None:
         self.setpoint_v = 0.0
@@ -182,11 +199,24 @@ class SupplyState:
 
     def output_v(self, t):
         """Output voltage at model time(s) ``t`` (scalar or array), V."""
+        if isinstance(t, (float, int)):
+            i = max(bisect.bisect_right(self._starts, t) - 1, 0)
+            return self.segments[i].at(float(t), self.ph.slew_v_per_s, self.ph.settle_tau_s)[0]
         t_arr = np.asarray(t, dtype=float)
-        idx = np.clip(np.searchsorted(self._starts, t_arr, side="right") - 1, 0, len(self.segments) - 1)
+        if self._starts_np is None:
+            self._starts_np = np.asarray(self._starts)
+        idx = np.clip(np.searchsorted(self._starts_np, t_arr, side="right") - 1, 0, len(self.segments) - 1)
         if t_arr.ndim == 0:
             v, _ = self.segments[int(idx)].eval(t_arr, self.ph.slew_v_per_s, self.ph.settle_tau_s)
             return float(v)
+        lo, hi = (int(idx.min()), int(idx.max())) if t_arr.size else (0, 0)
+        if lo == hi:  # the usual record: one segment throughout
+            seg = self.segments[lo]
+            tau = self.ph.settle_tau_s
+            if t_arr.size and float(t_arr.min()) - seg.t0 > abs(seg.target - seg.c0) / self.ph.slew_v_per_s + 50 * tau:
+                # settled: what is left of the lag (< e^-50 of a step) is below float resolution
+                return np.full_like(t_arr, seg.target)
+            return seg.eval(t_arr, self.ph.slew_v_per_s, tau)[0]
         out = np.empty_like(t_arr)
         for i in np.unique(idx):
             sel = idx == i
@@ -199,18 +229,19 @@ class SupplyState:
         last = self.segments[-1]
         if t < last.t0:
             t = last.t0
-        v, c = last.eval(t, self.ph.slew_v_per_s, self.ph.settle_tau_s)
-        self.segments.append(_Segment(t, float(v), float(c), float(target_v)))
+        v, c = last.at(float(t), self.ph.slew_v_per_s, self.ph.settle_tau_s)
+        self.segments.append(_Segment(float(t), v, c, float(target_v)))
         self.target_v = float(target_v)
+        self._starts_np = None
         if len(self.segments) > 4096:  # keep memory bounded; old history is settled anyway
             del self.segments[1:2048]
-            self._starts = np.fromiter((s.t0 for s in self.segments), float, len(self.segments))
+            self._starts = [s.t0 for s in self.segments]
         else:
-            self._starts = np.append(self._starts, t)
+            self._starts.append(float(t))
 
     def segments_since(self, t: float) -> list[_Segment]:
         """The segments in force at or after model time ``t`` (earlier ones were superseded)."""
-        i = max(int(np.searchsorted(self._starts, t, side="right")) - 1, 0)
+        i = max(bisect.bisect_right(self._starts, t) - 1, 0)
         return self.segments[i:]
 
     def settled_at(self) -> float:
@@ -913,6 +944,9 @@ class BenchModel:
         noise_board = getattr(self.board, "noise_v_rms", 0.0)
         codes, dy, y0 = {}, {}, {}
         for ch, cs in sc.channels.items():
+            if not cs.enabled:
+                codes[ch], dy[ch], y0[ch] = np.zeros(0, np.int8), cs.range_v / 256.0, cs.offset_v
+                continue
             y = sig[ch].copy()
             extra = noise_board if ch == 1 else self.ph.rail_noise_v
             lsb = cs.range_v / 256.0
@@ -922,7 +956,7 @@ class BenchModel:
                 y -= y.mean()
             code = np.rint((y - cs.offset_v) / lsb)
             np.clip(code, ADC_MIN, ADC_MAX, out=code)
-            codes[ch] = code.astype(np.int8) if cs.enabled else np.zeros(0, np.int8)
+            codes[ch] = code.astype(np.int8)
             dy[ch], y0[ch] = lsb, cs.offset_v
         self._record_serial += 1
         return Record(codes=codes, dt_s=dt, t0_s=t0, dy_v=dy, y0_v=y0,
