@@ -452,8 +452,7 @@ class InstrumentServer:
             whole = b"".join(bytes(p) for p in parts)
             parts = [whole[: max(len(whole) // 2, 1)]]
         try:
-            for p in parts:
-                conn.sendall(p)
+            _send_parts(conn, parts)
         except OSError:
             return False
         return True
@@ -487,6 +486,19 @@ class InstrumentServer:
         length = int(raw[2:2 + ndig])
         wrong = str(max(length // 2, 1)).rjust(ndig, "0")[-ndig:]
         return raw[:2] + wrong.encode() + raw[2 + ndig:]
+
+
+def _send_parts(conn: socket.socket, parts: list) -> None:
+    """Send the pieces of one reply with one gathering ``sendmsg`` (so the client wakes
+    once, not once per piece); what the kernel did not take goes with ``sendall``."""
+    sent = conn.sendmsg(parts)
+    for p in parts:
+        n = len(p)
+        if sent >= n:
+            sent -= n
+            continue
+        conn.sendall(memoryview(p)[sent:])
+        sent = 0
 
 
 def _shutdown(conn: socket.socket) -> None:
