@@ -125,6 +125,35 @@ class Instrument:
         self._write(text)
         return text
 
+    def command_checked(self, op: str, /, **values: Any) -> str:
+        """:meth:`command`, then the error queue: one message when the dialect allows
+        compound ones; return the text sent.
+
+        The reply also tells that the instrument has taken the command, so a caller that
+        goes on with other work does not hold the instrument up (a command sent without a
+        query may wait for a CPU the caller is using). The check covers every command sent
+        since the last one.
+
+        Raises
+        ------
+        InstrumentError
+            The queue held an error (it is then read empty).
+        """
+        text = (self.dialect.operations.get(op) or self.dialect.op(op)).render(**values)
+        if self.strict:
+            self._write(text)  # strict mode checks every command already
+        elif not self.dialect.compound:
+            self._write(text)
+            self.check_errors()
+        else:
+            joiner = ";" if self._error_text.startswith("*") else ";:"
+            self._unchecked.append(text)
+            reply = self.transport.query(f"{text}{joiner}{self._error_text}")
+            suspects = "; ".join(self._unchecked)
+            self._unchecked.clear()
+            self._raise_if_error(self._parse(self._error_op, reply), suspects, more=True)
+        return text
+
     def ask(self, op: str, /, **values: Any) -> Any:
         """Render the query ``op``, send it and return its parsed reply."""
         operation = self.dialect.operations.get(op) or self.dialect.op(op)

@@ -324,8 +324,13 @@ class Scope(Instrument):
             self.ask_checked("opc", before=self.dialect.op("arm").render())
 
     def arm(self) -> None:
-        """Arm one acquisition without waiting (pair with :meth:`wait_complete`)."""
-        self.command("arm")
+        """Arm one acquisition without waiting for it (pair with :meth:`wait_complete`).
+
+        The error queue is read in the same message (``INIT;:SYST:ERR?``): errors of the
+        set-up commands surface before the acquisition is waited for, and the reply tells
+        that the scope has armed while the caller goes on with other work.
+        """
+        self.command_checked("arm")
 
     def wait_complete(self, *, timeout_s: float) -> None:
         """Wait (``*OPC?``) until the armed acquisition is complete, at most ``timeout_s``.

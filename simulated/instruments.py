@@ -261,10 +261,37 @@ class ScopeInstrument(Instrument):
     def operation(self) -> int:
         return 16 if self.bench.measuring() else 0
 
+    def after_message(self) -> None:
+        """Once the message that armed an acquisition is answered: make its record, and
+        encode it in the present transfer format, while the modelled time runs."""
+        b = self.bench
+        if b._early_due is None:
+            return
+        with b.lock:
+            rec = b.make_early_record()
+            if rec is not None and self.fmt == "INTeger":
+                for ch, codes in rec.codes.items():
+                    if codes.size:
+                        self._encoded(rec, ch)
+
     def _rearm_if_armed(self) -> None:
         b = self.bench
         if b.acq is not None and b.acq.settings_key != b.scope.key():
             b.arm()
+
+    def _encoded(self, rec: Record, ch: int) -> memoryview:
+        """Channel ``ch`` of ``rec`` as a binary block in the present format (cached)."""
+        key = (ch, self.int_bits, self.big_endian)
+        block = rec.cache.get(key)
+        if block is None:
+            codes = rec.codes[ch]
+            if self.int_bits == 8:
+                data = encode_block(codes, dtype="int8")
+            else:
+                data = encode_block(codes.astype(np.int16) * 256, dtype="int16",
+                                    big_endian=self.big_endian)
+            block = rec.cache[key] = memoryview(data)
+        return block
 
     def _record(self, call) -> tuple[Record, int]:
         ch = _channel_param(call)
@@ -450,16 +477,7 @@ class ScopeInstrument(Instrument):
                     text = ",".join(np.char.mod("%.6E", rec.volts(ch)).tolist())
                     rec.cache[key] = memoryview(text.encode("ascii"))
                 return self.send_block(rec.cache[key])
-            key = (ch, self.int_bits, self.big_endian)
-            if key not in rec.cache:
-                codes = rec.codes[ch]
-                if self.int_bits == 8:
-                    block = encode_block(codes, dtype="int8")
-                else:
-                    block = encode_block(codes.astype(np.int16) * 256, dtype="int16",
-                                         big_endian=self.big_endian)
-                rec.cache[key] = memoryview(block)
-            return self.send_block(rec.cache[key])
+            return self.send_block(self._encoded(rec, ch))
 
         def scaling_q(call):
             rec, ch = self._record(call)

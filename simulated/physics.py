@@ -426,6 +426,7 @@ class BenchModel:
         self.generator = GeneratorState()
         self.scope = ScopeSettings()
         self.acq: Acquisition | None = None
+        self._early_due: Acquisition | None = None  # armed; its record is made early (arm)
         self.record: Record | None = None
         self._record_serial = 0
         self._counts: dict[tuple, int] = {}
@@ -656,11 +657,23 @@ class BenchModel:
                                settings_key=self.scope.key(), fingerprint=fp,
                                rng=_rng(self.seed, "acq", fp, n))
         if self.clock.realtime and self.scope.trigger_source == "IMMediate":
-            # the record's time span is known now: make it while the modelled time runs,
-            # whenever the client gets round to waiting for it
+            # the record's time span is known now: it is made while the modelled time runs
+            # (make_early_record, after the server has answered the message that armed it)
             self._try_trigger(final=False)
-            self._synthesise_early(self.acq)
+            self._early_due = self.acq
         self.cond.notify_all()
+
+    def make_early_record(self) -> Record | None:
+        """Make the record of the acquisition the last message armed, if it is still armed.
+
+        Real time only; returns the record made (None if there was nothing to make). An
+        acquisition waited for before this runs is made by the wait instead.
+        """
+        a, self._early_due = self._early_due, None
+        if a is None or a is not self.acq or a.early is not None:
+            return None
+        self._synthesise_early(a)
+        return a.early[1] if a.early is not None else None
 
     def abort(self) -> None:
         self.acq = None

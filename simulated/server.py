@@ -95,6 +95,9 @@ class Instrument:
     def wait_pending(self) -> None:
         """Block until no operation is pending (``*OPC?``, ``*WAI``)."""
 
+    def after_message(self) -> None:
+        """Work left for after a message has been answered (the server calls it)."""
+
     def questionable(self) -> int:
         return 0
 
@@ -406,6 +409,15 @@ class InstrumentServer:
 
     def _handle(self, conn: socket.socket, line: bytes) -> bool:
         """Process one message; return False when the connection must close."""
+        try:
+            return self._answer(conn, line)
+        finally:
+            try:
+                self.instrument.after_message()
+            except Exception:  # a bug in the model must not kill the server
+                log.exception("simulated %s: work after %r failed", self.instrument.role, line)
+
+    def _answer(self, conn: socket.socket, line: bytes) -> bool:
         if line.endswith(b"\r"):
             line = line[:-1]
         text = line.decode("latin-1")
