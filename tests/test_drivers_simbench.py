@@ -269,6 +269,29 @@ def test_settling_and_completion_read_the_error_queue_in_the_same_message(fast) 
     assert "*OPC?;:SYSTem:ERRor:NEXT?" in sim.command_log("scope")[n:]
 
 
+def test_arm_reads_the_error_queue_in_the_same_message(fast) -> None:
+    sim, b = fast
+    _power_up(b, 5.0)
+    sc = b.scope
+    sc.set_timebase(window_s=1e-5, sample_rate_hz=1e8)
+    n = len(sim.command_log("scope"))
+    sc.arm()
+    assert sim.command_log("scope")[n:] == ["INITiate:IMMediate;:SYSTem:ERRor:NEXT?"]
+    sc.wait_complete(timeout_s=2.0)
+    # an error left by a set-up command surfaces at the arm and names what was sent since
+    # the last check (the set-up, then the arm)
+    sc.set_trigger(source="free")
+    sim.inject("scope", "push_error", code=-222, message="Data out of range")
+    with pytest.raises(InstrumentError) as info:
+        sc.arm()
+    assert info.value.code == -222 and "INITiate:IMMediate" in info.value.command
+    assert "TRIGger" in info.value.command
+    assert sc.drain_errors() == []  # read empty
+    sc.wait_complete(timeout_s=2.0)  # the scope armed all the same; the session is in step
+    sc.arm()
+    assert sc.wait_and_fetch(b.wiring.output_channel, timeout_s=2.0).volts.size > 0
+
+
 def test_fault_delay_is_a_timeout_then_the_session_recovers(fast) -> None:
     sim, b = fast
     b.supply.query_retries = 0
