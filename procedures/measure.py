@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable, Mapping
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, replace
 from typing import Any, Literal
 
 import numpy as np
@@ -141,12 +141,16 @@ class ScopeMemory:
     remembered set-up usually shows the signal on 40-95 % of the screen, unclipped, with
     about the wanted number of cycles: then it is kept as the first of the K records and
     autoscale (several records) is skipped. A record that shows no oscillation at all is
-    kept too (a stopped board: one record decides). Anything else autoscales.
+    kept too (a stopped board: one record decides). Anything else autoscales. A kept
+    record whose span fills more than 85 % or less than 55 % of the screen retunes the
+    remembered scale to 75 % of it for the next point (``retunes``), so a slowly growing or
+    shrinking amplitude does not run into an autoscale.
     """
 
     setup: ScopeSetup | None = None
     autoscales: int = 0
     reused: int = 0
+    retunes: int = 0
     applied: ScopeSetup | None = None
     channel: int | None = None
 
@@ -209,6 +213,31 @@ def _crossings(y: np.ndarray, lo_v: float, hi_v: float) -> int:
     return int(np.count_nonzero(s[1:] != s[:-1]))
 
 
+SCREEN_DIVISIONS = 8
+"""Vertical divisions of a scope screen (the scale is per division)."""
+RETUNE_BAND = (0.55, 0.85)
+"""Screen fraction a kept record's span may fill before the remembered scale is retuned."""
+RETUNE_TO = 0.75
+"""Screen fraction a retuned scale gives the span seen (autoscale's 6 of 8 divisions)."""
+
+
+def _retuned(wf: Any, setup: ScopeSetup) -> ScopeSetup | None:
+    """The set-up for the next point when this record's span sits near an edge of the band.
+
+    A sweep's amplitude moves a little from point to point; a record that fits but fills
+    more than 85 % (or less than 55 %) of the screen would soon stop fitting, and the point
+    after would need a full autoscale (several records). Re-centring the remembered scale
+    on this record's own span costs only the set-up commands at the next point.
+    """
+    y = np.asarray(wf.volts, dtype=float)
+    top, bottom = float(np.max(y)), float(np.min(y))
+    span_v = top - bottom
+    lo, hi = RETUNE_BAND
+    if not span_v > 0 or lo <= span_v / (SCREEN_DIVISIONS * setup.scale_v_div) <= hi:
+        return None
+    return replace(setup, scale_v_div=span_v / (SCREEN_DIVISIONS * RETUNE_TO), offset_v=0.5 * (top + bottom))
+
+
 def _still_fits(wf: Any, setup: ScopeSetup, opts: MeasureOptions) -> tuple[str | None, Any]:
     """("off" | "fits" | None, detection) for a record taken with a remembered set-up.
 
@@ -225,7 +254,7 @@ def _still_fits(wf: Any, setup: ScopeSetup, opts: MeasureOptions) -> tuple[str |
     y = np.asarray(wf.volts, dtype=float)
     top, bottom = float(np.max(y)), float(np.min(y))
     span_v = top - bottom
-    if 0.4 <= span_v / (8.0 * setup.scale_v_div) <= 0.95:
+    if 0.4 <= span_v / (SCREEN_DIVISIONS * setup.scale_v_div) <= 0.95:
         mid, band = 0.5 * (top + bottom), 0.1 * span_v
         cycles = 0.5 * _crossings(y, mid - band, mid + band)
         if 0.8 * opts.cycles <= cycles <= 1.25 * opts.cycles and y.size >= 8 * cycles:
@@ -305,6 +334,11 @@ def measure_output_deferred(ctx: Any, opts: MeasureOptions, *, rail_set_v: float
         verdict, det = _still_fits(wf, memory.setup, opts)
         if verdict is not None:
             memory.reused += 1
+            if verdict == "fits":
+                retuned = _retuned(wf, memory.setup)
+                if retuned is not None:
+                    memory.setup = retuned
+                    memory.retunes += 1
             waves.append(wf)
             if det is not None:
                 dets[id(wf)] = det

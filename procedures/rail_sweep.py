@@ -279,8 +279,8 @@ class RailSweep(Procedure):
         if params["down"]:
             rows += run_branch(ctx, tracker, opts, params, branch="down", start_v=start_v,
                                stop_v=stop_v, done=len(rows), total=total, memory=memory)
-        ctx.log.info("rail_sweep: %d autoscales, %d points measured with the previous set-up",
-                     memory.autoscales, memory.reused)
+        ctx.log.info("rail_sweep: %d autoscales, %d points measured with the previous set-up "
+                     "(%d retuned it)", memory.autoscales, memory.reused, memory.retunes)
         step = "adaptive sweep" if params["adaptive"] else "sweep"
         results = [
             bracket_result("startup_v", flip_bracket(rows, branch="up"), what="start-up",

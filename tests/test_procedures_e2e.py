@@ -253,3 +253,43 @@ def test_an_abort_between_modulation_points_leaves_the_generator_off(rig):
     assert len(ctx.rows) == 5
     assert sim.generator_state()["output_on"] is False
     bench.supply.output(False)
+
+
+def _sweep_setup_counts(caplog):
+    import re
+
+    for rec in caplog.records:
+        m = re.match(r"rail_sweep: (\d+) autoscales, (\d+) points measured with the previous "
+                     r"set-up \((\d+) retuned it\)", rec.getMessage())
+        if m:
+            return tuple(int(g) for g in m.groups())
+    raise AssertionError("the sweep did not log its set-up counts")
+
+
+def test_a_fine_sweep_retunes_the_remembered_scale_instead_of_autoscaling(rig, caplog, monkeypatch):
+    import logging
+
+    from benchctl.procedures import measure
+
+    caplog.set_level(logging.INFO, logger="test")
+    sim, bench = rig("beacon", 1)
+    truth = sim.truth
+    grid = dict(start_v=3.4, stop_v=5.0, step_v=0.04, records=1, hold_s=0.02)
+    _, ctx, _ = _run(bench, "rail_sweep", **grid)
+    autoscales, reused, retunes = _sweep_setup_counts(caplog)
+    rows = list(ctx.rows.values())
+    # The amplitude grows about 2.5x over the sweep (a straight line in the linear region):
+    # the first point autoscales, then each kept record near a screen edge retunes the scale.
+    assert autoscales == 1 and retunes >= 2 and reused == len(rows) - 1
+    assert all(r["rescales"] == 0 for r in rows)  # no record clipped after a retune
+    for r in rows:
+        if r["rail_set_v"] >= truth.linear_lo_v + 0.1:
+            # the retuned screens keep the 8-bit record good enough for a 1 % Vpp (the fit
+            # error at 0.5-0.9 of the screen is well below that; our tolerance)
+            assert r["vpp_v"] == pytest.approx(truth.vpp_at(r["rail_set_v"]), rel=0.01), r
+    # without the retune the same sweep runs into autoscales part way
+    caplog.clear()
+    monkeypatch.setattr(measure, "_retuned", lambda wf, setup: None)
+    sim2, bench2 = rig("beacon", 1)
+    _run(bench2, "rail_sweep", **grid)
+    assert _sweep_setup_counts(caplog)[0] >= 2

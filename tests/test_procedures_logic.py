@@ -214,3 +214,35 @@ def test_a_flat_record_is_a_clear_no():
 
     vote = vote_from(detect_oscillation(np.zeros(256), fs_hz=1e6), clear_margin_db=6.0)
     assert not vote.oscillating and vote.clear and vote.score <= -6.0
+
+
+@pytest.mark.parametrize(("fraction", "retune"), [(0.9, True), (0.86, True), (0.84, False),
+                                                   (0.7, False), (0.56, False), (0.54, True),
+                                                   (0.3, True)])
+def test_a_kept_record_near_a_screen_edge_retunes_the_remembered_scale(fraction, retune) -> None:
+    from types import SimpleNamespace
+
+    from benchctl.procedures.measure import ScopeSetup, _retuned
+
+    setup = ScopeSetup(scale_v_div=0.25, offset_v=0.0, window_s=1e-4, sample_rate_hz=1e8)
+    span = fraction * 8 * 0.25  # V, on a 2 V screen
+    t = np.arange(4000) / 1e8
+    volts = 0.3 + 0.5 * span * np.sin(2 * np.pi * 2e6 * t + 0.1)
+    got = _retuned(SimpleNamespace(volts=volts), setup)
+    if not retune:
+        assert got is None
+        return
+    seen = float(volts.max() - volts.min())
+    # the span seen fills 75 % of the new screen (6 of 8 divisions), centred on the record
+    assert got.scale_v_div * 8 * 0.75 == pytest.approx(seen, rel=1e-12)
+    assert got.offset_v == pytest.approx(0.5 * (volts.max() + volts.min()), abs=1e-12)
+    assert (got.window_s, got.sample_rate_hz, got.coupling) == (setup.window_s, setup.sample_rate_hz, setup.coupling)
+
+
+def test_a_flat_record_does_not_retune() -> None:
+    from types import SimpleNamespace
+
+    from benchctl.procedures.measure import ScopeSetup, _retuned
+
+    setup = ScopeSetup(scale_v_div=0.25, offset_v=0.0, window_s=1e-4, sample_rate_hz=1e8)
+    assert _retuned(SimpleNamespace(volts=np.full(100, 0.2)), setup) is None
