@@ -190,3 +190,12 @@ def test_console_script_help_shows_cautions() -> None:
     found = str(script) if script.exists() else shutil.which("benchctl")
     assert found, "the benchctl console script is not installed in this environment"
     _check_cautions(_help_text([found, "--help"]))
+
+
+def test_the_benchmark_runner_refuses_an_unknown_name_and_runs_nothing(capsys, monkeypatch) -> None:
+    monkeypatch.syspath_prepend(str(ROOT))
+    from benchmarks.__main__ import main
+
+    assert main(["bench_no_such_thing"]) == 2
+    out, err = capsys.readouterr()
+    assert "no such benchmark: bench_no_such_thing" in err and "===" not in out
