@@ -173,6 +173,37 @@ class Instrument:
             self.check_errors()
         return self._parse(operation, reply)
 
+    def ask_many(self, *ops: str, **values: Any) -> list[Any]:
+        """Several queries, one message when the dialect allows compound ones; their parsed
+        replies in order.
+
+        Only for replies that cannot hold a ';' (numbers, integers, booleans); otherwise,
+        and in strict mode, one :meth:`ask` each. ``values`` go to every query.
+        """
+        operations = [self.dialect.operations.get(op) or self.dialect.op(op) for op in ops]
+        if (len(operations) < 2 or self.strict or not self.dialect.compound
+                or any(o.reply not in _PLAIN_REPLIES for o in operations)):
+            return [self.ask(op, **values) for op in ops]
+        texts = [o.render(**values) for o in operations]
+        message = texts[0]
+        for text in texts[1:]:
+            message += (";" if text.startswith("*") else ";:") + text
+        retries = self.query_retries if all(o.idempotent for o in operations) else 0
+        try:
+            reply = self.transport.query(message, retries=retries)
+        except InstrumentTimeout:
+            self._unchecked.append(message)  # a rejected query gets no reply: say why
+            try:
+                self.check_errors()
+            except (InstrumentTimeout, ConnectionLost, ProtocolError):
+                pass
+            raise
+        parts = reply.split(";")
+        if len(parts) != len(operations):
+            self.transport.mark_suspect()
+            raise ProtocolError(f"{self.resource}: {len(operations)} replies expected to {message!r}", reply)
+        return [self._parse(o, part) for o, part in zip(operations, parts, strict=True)]
+
     def ask_checked(self, op: str, /, *, before: str = "", **values: Any) -> Any:
         """:meth:`ask`, then the error queue: one message when the dialect allows compound ones.
 

@@ -116,6 +116,21 @@ class Supply(Instrument):
         """Return the measured output current, A."""
         return float(self.ask("measure_current", **self._ch))
 
+    def readback(self) -> tuple[float, float]:
+        """Return the measured output (voltage V, current A), one message where it can be."""
+        volts, amps = self.ask_many("measure_voltage", "measure_current", **self._ch)
+        return float(volts), float(amps)
+
+    def protection_checked(self) -> bool:
+        """:meth:`protection_tripped` with the error queue's first entry in the same message.
+
+        Raises
+        ------
+        InstrumentError
+            The queue held an error (it is then read empty).
+        """
+        return bool(self.ask_checked("ovp_tripped", **self._ch))
+
     def wait_settled(self, target_v: float, *, tol_v: float, timeout_s: float, poll_s: float = 0.01) -> float:
         """Poll the voltage readback until it is within ``tol_v`` of ``target_v``.
 

@@ -312,8 +312,10 @@ def measure_output_deferred(ctx: Any, opts: MeasureOptions, *, rail_set_v: float
         # one, the previous record's detection and estimates
         if not readings:
             ctx.idle()
-            readings["rail_v"] = finite_or_none(bench.supply.measure_voltage())
-            readings["current_a"] = finite_or_none(bench.supply.measure_current())
+            readback = getattr(bench.supply, "readback", None)  # both in one message
+            volts, amps = (readback() if readback is not None else
+                           (bench.supply.measure_voltage(), bench.supply.measure_current()))
+            readings["rail_v"], readings["current_a"] = finite_or_none(volts), finite_or_none(amps)
             ctx.checkpoint()
             return
         if not waves:

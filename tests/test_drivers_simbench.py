@@ -292,6 +292,40 @@ def test_arm_reads_the_error_queue_in_the_same_message(fast) -> None:
     assert sc.wait_and_fetch(b.wiring.output_channel, timeout_s=2.0).volts.size > 0
 
 
+def test_readback_and_the_protection_check_are_one_message_each(sim_bench) -> None:
+    sim = sim_bench
+    cfg = load_bench_text(sim.bench_toml())
+    for strict in (False, True):
+        with open_bench(cfg, max_voltage_v=6.0, strict=strict) as b:
+            _power_up(b, 4.0)
+            n = len(sim.command_log("supply"))
+            volts, amps = b.supply.readback()
+            sent = sim.command_log("supply")[n:]
+            # 1 mV readback resolution and 0.5 mV noise (our supply's numbers); the current
+            # is the board's running law at 4 V, within the 10 uA resolution and noise
+            assert volts == pytest.approx(4.0, abs=3e-3)
+            assert amps == pytest.approx(sim.truth.current_at(4.0, True), abs=1e-4)
+            n = len(sim.command_log("supply"))
+            assert b.supply.protection_checked() is False
+            checked = sim.command_log("supply")[n:]
+            if strict:  # one query each, every one followed by the error queue
+                assert sent[0] == "MEASure:VOLTage:DC?" and "MEASure:CURRent:DC?" in sent
+                assert "SYSTem:ERRor:NEXT?" in sent
+            else:
+                assert sent == ["MEASure:VOLTage:DC?;:MEASure:CURRent:DC?"]
+                assert checked == ["SOURce:VOLTage:PROTection:TRIPped?;:SYSTem:ERRor:NEXT?"]
+            b.supply.set_voltage(4.1)
+            sim.inject("supply", "push_error", code=-222, message="Data out of range")
+            with pytest.raises(InstrumentError) as info:
+                b.supply.protection_checked()
+            assert info.value.code == -222
+            assert b.supply.drain_errors() == []
+            sim.inject("supply", "trip_ovp")
+            assert b.supply.protection_checked() is True
+            b.supply.clear_protection()
+            b.supply.output(False)
+
+
 def test_fault_delay_is_a_timeout_then_the_session_recovers(fast) -> None:
     sim, b = fast
     b.supply.query_retries = 0

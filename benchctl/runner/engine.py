@@ -245,9 +245,12 @@ def check_bench(bench: Any) -> None:
     InstrumentError
         An instrument queued an error, or the supply's over-voltage protection tripped.
     """
+    supply = bench.supply
+    checked = getattr(supply, "protection_checked", None)  # the latch and the queue at once
     for inst in bench.instruments.values():
-        inst.check_errors()
-    if bench.supply.protection_tripped():
+        if inst is not supply or checked is None:
+            inst.check_errors()
+    if checked() if checked is not None else supply.protection_tripped():
         raise InstrumentError(0, "over-voltage protection tripped; the supply output is off",
                               resource=bench.supply.resource)
 
