@@ -534,12 +534,12 @@ class Scope(Instrument):
         stage = "range"
         grows = 0
         while n_acq < max_acquisitions:
-            # the acquisition's completion reads the error queue for these settings too
+            # the arm reads the error queue for these settings too
             self.setup_channel(channel, scale_v_div=scale, offset_v=offset, coupling=coupling,
                                probe=probe, check=False)
             self.set_timebase(window_s=window_s, sample_rate_hz=points / window_s, check=False)
-            self.acquire(timeout_s=timeout_s + window_s)
-            wf = self.fetch(channel)
+            self.arm()  # the set-up's errors surface here, before the wait
+            wf = self.wait_and_fetch(channel, timeout_s=timeout_s + window_s)
             n_acq += 1
             if wf.clipped:
                 if stage == "range":
