@@ -76,6 +76,8 @@ class Busy:
     def __init__(self, sim: SimulatedBench, *, tol_v: float = 0.005) -> None:
         self.acquisition_s = 0.0
         self.acquisitions = 0
+        self.messages = {role: len(server.command_log()) for role, server in sim.servers.items()}
+        self._sim = sim
         self._tol_v = tol_v
         self._changes: list[tuple[float, Any]] = []
         bm = self._bm = sim.bench
@@ -118,8 +120,10 @@ class Busy:
 
     def as_dict(self) -> dict:
         settle_s, changes = self._settling()
+        messages = {role: len(server.command_log()) - self.messages[role]
+                    for role, server in self._sim.servers.items()}
         return {"acquisition_s": self.acquisition_s, "settle_s": settle_s,
-                "acquisitions": self.acquisitions, "changes": changes}
+                "acquisitions": self.acquisitions, "changes": changes, "messages": messages}
 
 
 def serve() -> None:
@@ -264,6 +268,10 @@ hold_s = 0.0
     print(f"  ratio wall / floor = {ratio:.3f}   (target <= 1.15); "
           f"overhead {1e3 * (wall - floor) / points:.2f} ms per point; best of the runs "
           f"{min(r[0] for r in runs):.3f} (timeit's convention: the least disturbed run)")
+    msgs = busy["messages"]
+    print(f"  messages the instruments received: {sum(msgs.values()) / points:.1f} per point "
+          f"({', '.join(f'{role} {n}' for role, n in msgs.items())} in the run; a figure the "
+          "machine's noise does not move)")
     print(f"  of its wall, the run folder's fsync: {fs.total_s:.3f} s in {fs.calls} calls "
           f"({1e3 * fs.total_s / points:.2f} ms per point), most of it while the scope acquires "
           "(rows are recorded during the next point's acquisition)")
