@@ -255,7 +255,7 @@ class Scope(Instrument):
 
         The full screen spans 8 divisions (``range = 8 * scale_v_div``). With
         ``check=False`` (fast mode) the error queue is left for the next point of
-        consequence -- an acquisition's completion, say -- which then names these commands.
+        consequence -- the next arm or acquisition, say -- which then names these commands.
         """
         if not (math.isfinite(scale_v_div) and scale_v_div > 0):
             raise ValueError(f"{scale_v_div=} must be > 0")

@@ -98,7 +98,7 @@ class FakeScope:
     def setup_channel(self, channel, **kw):
         pass
 
-    def set_timebase(self, *, window_s, sample_rate_hz):
+    def set_timebase(self, *, window_s, sample_rate_hz, check=True):
         self.window_s, self.rate_hz = window_s, sample_rate_hz
 
     def set_trigger(self, **kw):
