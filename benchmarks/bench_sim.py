@@ -69,35 +69,17 @@ def _pull_block(s: socket.socket, buf: bytearray) -> int:
     return total
 
 
-class _RawSender:
-    """Reference: a server that answers any line with a fixed prepared buffer (sendall)."""
-
-    def __init__(self, payload: bytes) -> None:
-        self.payload = memoryview(payload)
-        self.sock = socket.create_server(("127.0.0.1", 0))
-        self.port = self.sock.getsockname()[1]
-        threading.Thread(target=self._run, daemon=True).start()
-
-    def _run(self) -> None:
-        conn, _ = self.sock.accept()
-        conn.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
-        with conn:
-            while True:
-                data = conn.recv(65536)
-                if not data:
-                    return
-                for _ in range(data.count(b"\n")):
-                    conn.sendall(self.payload)
-
-
-class _Echo:
-    """Minimal thread-per-client line echo server: the round-trip reference."""
+class _OneClientServer:
+    """A loopback server for one client, answering whatever it receives with ``_answer``."""
 
     def __init__(self) -> None:
         self.sock = socket.create_server(("127.0.0.1", 0))
         self.port = self.sock.getsockname()[1]
         threading.Thread(target=self._run, daemon=True).start()
 
+    def _answer(self, conn: socket.socket, data: bytes) -> None:
+        raise NotImplementedError
+
     def _run(self) -> None:
         conn, _ = self.sock.accept()
         conn.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
@@ -106,7 +88,26 @@ class _Echo:
                 data = conn.recv(65536)
                 if not data:
                     return
-                conn.sendall(data)
+                self._answer(conn, data)
+
+
+class _RawSender(_OneClientServer):
+    """Reference: a server that answers any line with a fixed prepared buffer (sendall)."""
+
+    def __init__(self, payload: bytes) -> None:
+        self.payload = memoryview(payload)
+        super().__init__()
+
+    def _answer(self, conn: socket.socket, data: bytes) -> None:
+        for _ in range(data.count(b"\n")):
+            conn.sendall(self.payload)
+
+
+class _Echo(_OneClientServer):
+    """Minimal thread-per-client line echo server: the round-trip reference."""
+
+    def _answer(self, conn: socket.socket, data: bytes) -> None:
+        conn.sendall(data)
 
 
 def _rate(fn, nbytes: int, repeats: int) -> float:
