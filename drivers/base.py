@@ -49,6 +49,16 @@ DRIVERS: dict[str, type[Instrument]] = {}
 MAX_ERRORS_PER_CHECK = 32
 
 
+def compound(*texts: str) -> str:
+    """One program message of several: each after the first starts again at the root
+    (``;:``), a common command (``*OPC?``) needs only the ``;`` (the compound-command
+    rule of SCPI-1999 vol. 1, from memory)."""
+    message = texts[0]
+    for text in texts[1:]:
+        message += (";" if text.startswith("*") else ";:") + text
+    return message
+
+
 def register_driver(role: str) -> Callable[[type[Instrument]], type[Instrument]]:
     """Register a driver class for ``role``; fails loudly on a second or ill-formed one."""
 
@@ -146,9 +156,8 @@ class Instrument:
             self._write(text)
             self.check_errors()
         else:
-            joiner = ";" if self._error_text.startswith("*") else ";:"
             self._unchecked.append(text)
-            reply = self.transport.query(f"{text}{joiner}{self._error_text}")
+            reply = self.transport.query(compound(text, self._error_text))
             suspects = "; ".join(self._unchecked)
             self._unchecked.clear()
             self._raise_if_error(self._parse(self._error_op, reply), suspects, more=True)
@@ -184,10 +193,7 @@ class Instrument:
         if (len(operations) < 2 or self.strict or not self.dialect.compound
                 or any(o.reply not in _PLAIN_REPLIES for o in operations)):
             return [self.ask(op, **values) for op in ops]
-        texts = [o.render(**values) for o in operations]
-        message = texts[0]
-        for text in texts[1:]:
-            message += (";" if text.startswith("*") else ";:") + text
+        message = compound(*(o.render(**values) for o in operations))
         retries = self.query_retries if all(o.idempotent for o in operations) else 0
         try:
             reply = self.transport.query(message, retries=retries)
@@ -227,11 +233,10 @@ class Instrument:
         text = operation.render(**values)
         if before:
             self._unchecked.append(before)
-            text = f"{before}{';' if text.startswith('*') else ';:'}{text}"
-        joiner = ";" if self._error_text.startswith("*") else ";:"
+            text = compound(before, text)
         self._unchecked.append(text)
         try:
-            reply = self.transport.query(f"{text}{joiner}{self._error_text}")
+            reply = self.transport.query(compound(text, self._error_text))
         except InstrumentTimeout:
             try:  # a rejected query gets no reply: say why if the queue knows
                 self.check_errors()
@@ -258,8 +263,7 @@ class Instrument:
     def _write(self, text: str) -> None:
         if self.strict:
             if self.dialect.compound:
-                joiner = ";" if self._error_text.startswith("*") else ";:"
-                reply = self.transport.query(f"{text}{joiner}{self._error_text}")
+                reply = self.transport.query(compound(text, self._error_text))
                 self._raise_if_error(self._parse(self._error_op, reply), text, more=True)
             else:
                 self.transport.write(text)

@@ -24,7 +24,7 @@ import numpy as np
 
 from benchctl.errors import ConnectionLost, InstrumentTimeout, MeasurementError, ProtocolError
 
-from .base import Instrument, register_driver
+from .base import Instrument, compound, register_driver
 
 __all__ = ["AutoscaleResult", "Scope", "Waveform"]
 
@@ -384,8 +384,7 @@ class Scope(Instrument):
         """Scaling and block in one message: ``TRACe:SCALing? CH1;:TRACe:DATA? CH1``."""
         scaling_op = self.dialect.op("scaling")
         block_text = self.dialect.op("fetch_block").render(channel=channel)
-        joiner = ";" if block_text.startswith("*") else ";:"
-        message = f"{scaling_op.render(channel=channel)}{joiner}{block_text}"
+        message = compound(scaling_op.render(channel=channel), block_text)
         width = 2 if mode == "int16" else 1
         scale: dict[str, float] = {}
 
@@ -415,9 +414,7 @@ class Scope(Instrument):
         opc_op, scaling_op = self.dialect.op("opc"), self.dialect.op("scaling")
         scaling_text = scaling_op.render(channel=channel)
         block_text = self.dialect.op("fetch_block").render(channel=channel)
-        message = opc_op.render()
-        for part in (scaling_text, block_text):
-            message += (";" if part.startswith("*") else ";:") + part
+        message = compound(opc_op.render(), scaling_text, block_text)
         width = 2 if mode == "int16" else 1
         scale: dict[str, float] = {}
 

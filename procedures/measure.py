@@ -222,25 +222,27 @@ RETUNE_TO = 0.75
 """Screen fraction a retuned scale gives the span seen (autoscale's 6 of 8 divisions)."""
 
 
-def _retuned(wf: Any, setup: ScopeSetup) -> ScopeSetup | None:
-    """The set-up for the next point when this record's span sits near an edge of the band.
+def _retuned(setup: ScopeSetup, top_v: float, bottom_v: float) -> ScopeSetup | None:
+    """The set-up for the next point when a kept record, from ``bottom_v`` to ``top_v``,
+    sits near an edge of the band.
 
     A sweep's amplitude moves a little from point to point; a record that fits but fills
     more than 85 % (or less than 55 %) of the screen would soon stop fitting, and the point
     after would need a full autoscale (several records). Re-centring the remembered scale
     on this record's own span costs only the set-up commands at the next point.
     """
-    y = np.asarray(wf.volts, dtype=float)
-    top, bottom = float(np.max(y)), float(np.min(y))
-    span_v = top - bottom
+    span_v = top_v - bottom_v
     lo, hi = RETUNE_BAND
     if not span_v > 0 or lo <= span_v / (SCREEN_DIVISIONS * setup.scale_v_div) <= hi:
         return None
-    return replace(setup, scale_v_div=span_v / (SCREEN_DIVISIONS * RETUNE_TO), offset_v=0.5 * (top + bottom))
+    return replace(setup, scale_v_div=span_v / (SCREEN_DIVISIONS * RETUNE_TO),
+                   offset_v=0.5 * (top_v + bottom_v))
 
 
-def _still_fits(wf: Any, setup: ScopeSetup, opts: MeasureOptions) -> tuple[str | None, Any]:
-    """("off" | "fits" | None, detection) for a record taken with a remembered set-up.
+def _still_fits(wf: Any, setup: ScopeSetup,
+                opts: MeasureOptions) -> tuple[str | None, Any, tuple[float, float] | None]:
+    """("off" | "fits" | None, detection, (top, bottom) V) for a record taken with a
+    remembered set-up (the extent is None for a clipped record).
 
     None means autoscale is needed. "fits" is decided cheaply, before the record is
     analysed: unclipped, 40-95 % of the screen, and 0.8-1.25 x the wanted cycles (counted
@@ -251,7 +253,7 @@ def _still_fits(wf: Any, setup: ScopeSetup, opts: MeasureOptions) -> tuple[str |
     twice.
     """
     if wf.clipped_samples > 0:
-        return None, None
+        return None, None, None
     y = np.asarray(wf.volts, dtype=float)
     top, bottom = float(np.max(y)), float(np.min(y))
     span_v = top - bottom
@@ -259,9 +261,9 @@ def _still_fits(wf: Any, setup: ScopeSetup, opts: MeasureOptions) -> tuple[str |
         mid, band = 0.5 * (top + bottom), 0.1 * span_v
         cycles = 0.5 * _crossings(y, mid - band, mid + band)
         if 0.8 * opts.cycles <= cycles <= 1.25 * opts.cycles and y.size >= 8 * cycles:
-            return "fits", None
+            return "fits", None, (top, bottom)
     det = _detect(y, _fs(wf), opts.band_hz)
-    return ("off" if not det.oscillating else None), det
+    return ("off" if not det.oscillating else None), det, (top, bottom)
 
 
 def measure_output(ctx: Any, opts: MeasureOptions, *, rail_set_v: float,
@@ -334,11 +336,11 @@ def measure_output_deferred(ctx: Any, opts: MeasureOptions, *, rail_set_v: float
     if memory is not None and memory.setup is not None:
         memory.apply(scope, ch)
         wf = acquire_output(ctx, timeout_s=opts.timeout_s, meanwhile=meanwhile)
-        verdict, det = _still_fits(wf, memory.setup, opts)
+        verdict, det, extent = _still_fits(wf, memory.setup, opts)
         if verdict is not None:
             memory.reused += 1
             if verdict == "fits":
-                retuned = _retuned(wf, memory.setup)
+                retuned = _retuned(memory.setup, *extent)
                 if retuned is not None:
                     memory.setup = retuned
                     memory.retunes += 1

@@ -265,7 +265,7 @@ class ScopeInstrument(Instrument):
         """Once the message that armed an acquisition is answered: make its record, and
         encode it in the present transfer format, while the modelled time runs."""
         b = self.bench
-        if b._early_due is None:
+        if not b.early_record_due:
             return
         with b.lock:
             rec = b.make_early_record()

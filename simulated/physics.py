@@ -663,6 +663,11 @@ class BenchModel:
             self._early_due = self.acq
         self.cond.notify_all()
 
+    @property
+    def early_record_due(self) -> bool:
+        """True while an armed acquisition waits for :meth:`make_early_record`."""
+        return self._early_due is not None
+
     def make_early_record(self) -> Record | None:
         """Make the record of the acquisition the last message armed, if it is still armed.
 

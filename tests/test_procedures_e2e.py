@@ -289,7 +289,7 @@ def test_a_fine_sweep_retunes_the_remembered_scale_instead_of_autoscaling(rig, c
             assert r["vpp_v"] == pytest.approx(truth.vpp_at(r["rail_set_v"]), rel=0.01), r
     # without the retune the same sweep runs into autoscales part way
     caplog.clear()
-    monkeypatch.setattr(measure, "_retuned", lambda wf, setup: None)
+    monkeypatch.setattr(measure, "_retuned", lambda setup, top_v, bottom_v: None)
     sim2, bench2 = rig("beacon", 1)
     _run(bench2, "rail_sweep", **grid)
     assert _sweep_setup_counts(caplog)[0] >= 2

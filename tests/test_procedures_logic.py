@@ -220,15 +220,13 @@ def test_a_flat_record_is_a_clear_no():
                                                    (0.7, False), (0.56, False), (0.54, True),
                                                    (0.3, True)])
 def test_a_kept_record_near_a_screen_edge_retunes_the_remembered_scale(fraction, retune) -> None:
-    from types import SimpleNamespace
-
     from benchctl.procedures.measure import ScopeSetup, _retuned
 
     setup = ScopeSetup(scale_v_div=0.25, offset_v=0.0, window_s=1e-4, sample_rate_hz=1e8)
     span = fraction * 8 * 0.25  # V, on a 2 V screen
     t = np.arange(4000) / 1e8
     volts = 0.3 + 0.5 * span * np.sin(2 * np.pi * 2e6 * t + 0.1)
-    got = _retuned(SimpleNamespace(volts=volts), setup)
+    got = _retuned(setup, float(volts.max()), float(volts.min()))
     if not retune:
         assert got is None
         return
@@ -240,9 +238,7 @@ def test_a_kept_record_near_a_screen_edge_retunes_the_remembered_scale(fraction,
 
 
 def test_a_flat_record_does_not_retune() -> None:
-    from types import SimpleNamespace
-
     from benchctl.procedures.measure import ScopeSetup, _retuned
 
     setup = ScopeSetup(scale_v_div=0.25, offset_v=0.0, window_s=1e-4, sample_rate_hz=1e8)
-    assert _retuned(SimpleNamespace(volts=np.full(100, 0.2)), setup) is None
+    assert _retuned(setup, 0.2, 0.2) is None
